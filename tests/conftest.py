@@ -1,0 +1,29 @@
+"""Shared fixtures: the demo preset, a seeded RNG, and a hypothesis profile for CI."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from hypothesis import settings
+
+from voicer.resources import DEMO_PIANO, bundled_pianos
+from voicer.tone.preset import Preset, load_preset
+
+# No per-example deadline: the shared 2-core CI machine has noisy timing.
+settings.register_profile("voicer", deadline=None, max_examples=60)
+settings.load_profile("voicer")
+
+
+@pytest.fixture
+def rng() -> np.random.Generator:
+    return np.random.default_rng(20261201)
+
+
+@pytest.fixture(scope="session")
+def demo_path():
+    return bundled_pianos()[DEMO_PIANO]
+
+
+@pytest.fixture(scope="session")
+def demo(demo_path) -> Preset:
+    return load_preset(demo_path)

@@ -1,0 +1,157 @@
+"""The one table of preset fields: name, unit, allowed range, default and interpolation.
+
+Validation, the command-line help and the README's field list are all read from here,
+so a field is declared once. Per-key fields appear in anchors and overrides; instrument
+fields in the ``[instrument]`` table.
+"""
+
+from __future__ import annotations
+
+__all__ = ["Param", "KEY_PARAMS", "INSTRUMENT_PARAMS", "KEY_PARAM_BY_NAME", "INSTRUMENT_PARAM_BY_NAME", "WINDING_FIELDS"]
+
+import math
+from dataclasses import dataclass
+from typing import Any, Literal
+
+from ..errors import ParameterError
+from ..physics.strings import END_CONDITIONS
+from ..physics.tuning import HIGHEST_KEY, LOWEST_KEY
+
+Interp = Literal["log", "linear", "step"]
+
+
+@dataclass(frozen=True)
+class Param:
+    """One preset field.
+
+    Attributes
+    ----------
+    name : str
+        Field name as written in the TOML file (unit in the name).
+    kind : {'float', 'int', 'str'}
+        Value type. A float field also accepts a TOML integer; booleans are never numbers.
+    unit : str
+        Unit for display ('' when dimensionless).
+    lo, hi : float or None
+        Allowed range; ``None`` leaves that side open-ended.
+    lo_open, hi_open : bool
+        Whether the bound itself is excluded.
+    default : object or None
+        Value used when no anchor gives the field; ``None`` makes it required.
+    interp : {'log', 'linear', 'step'}
+        How anchor values are carried across the keys between them: monotone cubic on
+        the value or its logarithm, or held from the anchor below (integers).
+    sectioned : bool
+        Interpolated separately in the wound and the plain section of the scale, since
+        string geometry jumps at the break between them.
+    choices : tuple of str
+        Allowed values of a string field with a fixed set (empty: free text).
+    help : str
+        One line for people.
+    """
+
+    name: str
+    kind: Literal["float", "int", "str"]
+    unit: str
+    help: str
+    lo: float | None = None
+    hi: float | None = None
+    lo_open: bool = False
+    hi_open: bool = False
+    default: Any = None
+    interp: Interp = "linear"
+    sectioned: bool = False
+    choices: tuple[str, ...] = ()
+
+    def range_text(self) -> str:
+        """The allowed values in words, e.g. ``'0 < x < 0.5'`` or ``'1..3'``."""
+        if self.choices:
+            return "one of " + ", ".join(repr(c) for c in self.choices)
+        if self.kind == "str":
+            return "text"
+        if self.kind == "int" and self.lo is not None and self.hi is not None:
+            return f"{self.lo:g}..{self.hi:g}"
+        parts = []
+        if self.lo is not None:
+            parts.append(f"{self.lo:g} {'<' if self.lo_open else '<='} ")
+        parts.append("x")
+        if self.hi is not None:
+            parts.append(f" {'<' if self.hi_open else '<='} {self.hi:g}")
+        unit = f" {self.unit}" if self.unit else ""
+        return "".join(parts) + unit
+
+    def check(self, value: Any) -> Any:
+        """Return ``value`` converted to the field's type, or raise ParameterError.
+
+        The message echoes the value and states the allowed range; the caller adds the
+        file, key and field name.
+        """
+        if self.kind == "str":
+            if not isinstance(value, str):
+                raise ParameterError(f"expected text, got {type(value).__name__} {value!r}")
+            if self.choices and value not in self.choices:
+                raise ParameterError(f"{value!r} is not allowed; allowed: {self.range_text()}")
+            return value
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise ParameterError(f"expected a number ({self.kind}), got {type(value).__name__} {value!r}")
+        if self.kind == "int" and not isinstance(value, int):
+            raise ParameterError(f"expected a whole number, got {value!r}; allowed: {self.range_text()}")
+        if self.kind == "float":
+            value = float(value)
+            if not math.isfinite(value):
+                raise ParameterError(f"{value!r} is not a finite number; allowed: {self.range_text()}")
+        too_low = self.lo is not None and (value <= self.lo if self.lo_open else value < self.lo)
+        too_high = self.hi is not None and (value >= self.hi if self.hi_open else value > self.hi)
+        if too_low or too_high:
+            raise ParameterError(f"{value!r} is outside the allowed range {self.range_text()}")
+        return value
+
+
+#: Per-key fields: given at anchors (interpolated across the compass) or per-key overrides.
+KEY_PARAMS: tuple[Param, ...] = (
+    Param("speaking_length_m", "float", "m", "vibrating length between the front termination and the bridge pin",
+          lo=0.02, hi=3.0, interp="log", sectioned=True),
+    Param("core_diameter_mm", "float", "mm", "steel wire diameter (the core of a wound string)",
+          lo=0.3, hi=2.5, interp="log", sectioned=True),
+    Param("winding_diameter_mm", "float", "mm",
+          "outer diameter of a close-wound single copper layer (wound section only)",
+          lo=0.3, hi=12.0, interp="log", sectioned=True),
+    Param("winding_mass_g_per_m", "float", "g/m",
+          "mass per length added by the winding, instead of winding_diameter_mm (wound section only)",
+          lo=0.0, hi=800.0, lo_open=True, interp="log", sectioned=True),
+    Param("strings", "int", "", "unison count: strings struck by one hammer", lo=1, hi=3, interp="step"),
+    Param("strike_ratio", "float", "", "strike point as a fraction of the speaking length from the front end",
+          lo=0.0, hi=0.5, lo_open=True, hi_open=True),
+    Param("stretch_cents", "float", "cents", "tuning of the first partial relative to equal temperament",
+          lo=-100.0, hi=100.0, default=0.0),
+    Param("hammer_mass_g", "float", "g", "effective mass of the hammer head at the strike",
+          lo=0.5, hi=30.0, interp="log"),
+    Param("hammer_width_mm", "float", "mm", "width of the felt contact along the string",
+          lo=0.5, hi=50.0, interp="log"),
+    Param("felt_force_1mm_n", "float", "N",
+          "felt stiffness, as the force at 1 mm compression (F = F1 (c / 1 mm)^p)",
+          lo=0.0, hi=1.0e5, lo_open=True, interp="log"),
+    Param("felt_exponent", "float", "", "power-law exponent p of the felt (Hall; Boutillon 1988)",
+          lo=1.0, hi=6.0),
+    Param("loss_b1_per_s", "float", "1/s", "frequency-independent decay rate b1 (sigma = b1 + b3 omega^2)",
+          lo=0.0, hi=100.0),
+    Param("loss_b3_s", "float", "s", "decay-rate coefficient b3 of omega^2 (Chaigne & Askenfelt 1994)",
+          lo=0.0, hi=1.0e-6, lo_open=True, interp="log"),
+)
+
+#: The two ways of giving a string's winding; at most one per preset.
+WINDING_FIELDS = ("winding_diameter_mm", "winding_mass_g_per_m")
+
+#: Fields of the ``[instrument]`` table.
+INSTRUMENT_PARAMS: tuple[Param, ...] = (
+    Param("name", "str", "", "name of the instrument", default=""),
+    Param("maker", "str", "", "maker and model", default=""),
+    Param("description", "str", "", "free text: where it stands, its state", default=""),
+    Param("a4_hz", "float", "Hz", "reference pitch of A4 (ISO 16: 440 Hz)", lo=380.0, hi=480.0, default=440.0),
+    Param("end_condition", "str", "", "how the string ends are modelled", default="pinned", choices=END_CONDITIONS),
+    Param("last_wound_key", "int", "", f"highest key with wound strings ({LOWEST_KEY - 1} = none)",
+          lo=LOWEST_KEY - 1, hi=HIGHEST_KEY, default=LOWEST_KEY - 1),
+)
+
+KEY_PARAM_BY_NAME = {p.name: p for p in KEY_PARAMS}
+INSTRUMENT_PARAM_BY_NAME = {p.name: p for p in INSTRUMENT_PARAMS}
