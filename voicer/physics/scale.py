@@ -117,7 +117,7 @@ def derive_strings(
     f0_sq = f1**2 - stiffness
     bad = _first_bad(f0_sq <= 0)
     if bad is not None:
-        raise TooStiffError(f"string {bad} is too stiff to sound at {f1[bad]:.2f} Hz", bad)
+        raise TooStiffError(f"string {bad} is too stiff to sound at {f1.reshape(-1)[bad]:.2f} Hz", bad)
     f0 = np.sqrt(f0_sq)
     if end == "clamped":
         for _ in range(_FIXED_POINT_STEPS):

@@ -7,7 +7,15 @@ fields in the ``[instrument]`` table.
 
 from __future__ import annotations
 
-__all__ = ["Param", "KEY_PARAMS", "INSTRUMENT_PARAMS", "KEY_PARAM_BY_NAME", "INSTRUMENT_PARAM_BY_NAME", "WINDING_FIELDS"]
+__all__ = [
+    "Param",
+    "KEY_PARAMS",
+    "INSTRUMENT_PARAMS",
+    "KEY_PARAM_BY_NAME",
+    "INSTRUMENT_PARAM_BY_NAME",
+    "WINDING_FIELDS",
+    "fields_markdown",
+]
 
 import math
 from dataclasses import dataclass
@@ -155,3 +163,20 @@ INSTRUMENT_PARAMS: tuple[Param, ...] = (
 
 KEY_PARAM_BY_NAME = {p.name: p for p in KEY_PARAMS}
 INSTRUMENT_PARAM_BY_NAME = {p.name: p for p in INSTRUMENT_PARAMS}
+
+
+def fields_markdown() -> str:
+    """The field tables of the README (kept in sync by a test)."""
+    lines = []
+    for title, params in (("`[instrument]`", INSTRUMENT_PARAMS), ("per key (`[[anchor]]`, `[override.KEY]`)", KEY_PARAMS)):
+        lines += [f"Fields {title}:", "", "| field | unit | allowed | default | meaning |", "|---|---|---|---|---|"]
+        for p in params:
+            if p.name in WINDING_FIELDS:
+                default = "wound keys: one of the two"
+            elif p.default is None:
+                default = "required"
+            else:
+                default = f"`{p.default!r}`".replace("'", '"')
+            lines.append(f"| `{p.name}` | {p.unit or '-'} | {p.range_text()} | {default} | {p.help} |")
+        lines.append("")
+    return "\n".join(lines).rstrip() + "\n"

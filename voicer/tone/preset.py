@@ -43,12 +43,12 @@ from typing import Any, Mapping
 import numpy as np
 import tomli_w
 from numpy.typing import NDArray
-from scipy.interpolate import PchipInterpolator
 
 from ..errors import ParameterError, PresetError
 from ..io.atomic import atomic_write_bytes
 from ..physics.scale import Scale
 from ..physics.tuning import HIGHEST_KEY, KEYS, LOWEST_KEY
+from .interp import pchip
 from .params import INSTRUMENT_PARAM_BY_NAME, INSTRUMENT_PARAMS, KEY_PARAM_BY_NAME, KEY_PARAMS, WINDING_FIELDS, Param
 
 FORMAT_VERSION = 1
@@ -235,7 +235,7 @@ def _interpolate(param: Param, xs: list[int], ys: list[float], keys: NDArray[np.
     if len(x) == 1:
         return np.full(len(keys), y[0])
     y_fit = np.log(y) if param.interp == "log" else y
-    out = PchipInterpolator(x, y_fit)(np.clip(keys, x[0], x[-1]))
+    out = pchip(x, y_fit, np.clip(keys, x[0], x[-1]))
     if param.interp == "log":
         out = np.exp(out)
     out[np.isin(keys, x)] = y[np.isin(x, keys)]  # anchors exactly as written, not via exp(log())

@@ -1,0 +1,90 @@
+"""The command line: scale table and JSON schema, demo, errors with exit status 2."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+
+from voicer.cli import main
+from voicer.physics.tuning import KEYS
+
+JSON_KEY_FIELDS = {"key", "f0_hz", "length_m", "tension_n", "b", "strings", "strike_ratio", "partials_hz"}
+
+
+def run(capsys, *argv: str) -> tuple[int, str, str]:
+    code = main(list(argv))
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def test_scale_json_schema(capsys, demo) -> None:
+    code, out, err = run(capsys, "scale", "demo", "--json")
+    assert code == 0 and err == ""
+    data = json.loads(out)
+    assert [k["key"] for k in data["keys"]] == KEYS.tolist()
+    for row in data["keys"]:
+        assert JSON_KEY_FIELDS <= set(row)
+        assert len(row["partials_hz"]) == 16
+        assert row["partials_hz"][0] == row["f0_hz"]
+        assert row["strings"] in (1, 2, 3) and isinstance(row["strings"], int)
+    s = demo.scale
+    np.testing.assert_allclose([k["tension_n"] for k in data["keys"]], s.tension_n, rtol=1e-15)
+    np.testing.assert_allclose([k["f0_hz"] for k in data["keys"]], s.f1_hz, rtol=1e-12)
+    assert data["keys"][69 - 21]["f0_hz"] == pytest.approx(440.0, abs=1e-9)
+
+
+def test_scale_json_partials_option(capsys) -> None:
+    code, out, _ = run(capsys, "scale", "demo", "--json", "--partials", "4")
+    assert code == 0 and all(len(k["partials_hz"]) == 4 for k in json.loads(out)["keys"])
+
+
+def test_scale_table_lists_the_compass(capsys, demo_path) -> None:
+    code, out, _ = run(capsys, "scale", str(demo_path))
+    assert code == 0
+    rows = [line for line in out.splitlines() if line[:4].strip().isdigit()]
+    assert [int(r.split()[0]) for r in rows] == KEYS.tolist()
+    assert " 69 A4      440.00" in out
+
+
+def test_demo_prints_the_demo_instrument(capsys) -> None:
+    code, out, _ = run(capsys, "demo")
+    assert code == 0 and "KH-190 salon grand" in out and " 108 C8" in out
+
+
+def test_bad_preset_exits_2_with_one_line(capsys, tmp_path) -> None:
+    bad = tmp_path / "bad.toml"
+    bad.write_text("[[anchor]]\nkey = 60\nstrings = 4\n")
+    code, out, err = run(capsys, "scale", str(bad))
+    assert code == 2 and out == ""
+    assert err.count("\n") == 1
+    assert err.startswith(f"voicer scale: error: {bad}: key 60: field 'strings'") and "1..3" in err
+
+
+def test_missing_preset_names_the_bundled_ones(capsys) -> None:
+    code, _, err = run(capsys, "scale", "no-such-piano")
+    assert code == 2 and "no such preset file" in err and "kestrel-190" in err
+
+
+@pytest.mark.parametrize("argv", [["scale"], ["scale", "demo", "--partials", "0"], ["frobnicate"]])
+def test_usage_errors_exit_2(argv, capsys) -> None:
+    with pytest.raises(SystemExit) as info:
+        main(argv)
+    assert info.value.code == 2
+
+
+@pytest.mark.parametrize("command", ["demo", "scale"])
+def test_help_has_an_example(command, capsys) -> None:
+    with pytest.raises(SystemExit) as info:
+        main([command, "--help"])
+    assert info.value.code == 0
+    assert "example" in capsys.readouterr().out
+
+
+def test_module_entry_point() -> None:
+    done = subprocess.run([sys.executable, "-m", "voicer", "scale", "demo", "--json"],
+                          capture_output=True, text=True, check=True)
+    assert len(json.loads(done.stdout)["keys"]) == 88
