@@ -10,7 +10,9 @@ from scipy.interpolate import PchipInterpolator
 from voicer.tone.interp import pchip
 
 
-@given(st.lists(st.floats(-1e3, 1e3), min_size=2, max_size=12), st.integers(0, 2**32 - 1))
+# Values on a 1e-3 grid, like anchor data; near-subnormal slopes overflow inside scipy itself.
+@given(st.lists(st.integers(-10**6, 10**6).map(lambda i: i / 1000), min_size=2, max_size=12),
+       st.integers(0, 2**32 - 1))
 def test_matches_scipy(values, seed) -> None:
     rng = np.random.default_rng(seed)
     x = np.cumsum(rng.uniform(0.5, 12.0, len(values)))

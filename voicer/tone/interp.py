@@ -46,7 +46,7 @@ def pchip(x: ArrayLike, y: ArrayLike, at: ArrayLike) -> NDArray[np.float64]:
     else:
         w1, w2 = 2.0 * h[1:] + h[:-1], h[1:] + 2.0 * h[:-1]
         same = (m[:-1] * m[1:]) > 0
-        with np.errstate(divide="ignore", invalid="ignore"):
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):  # m == 0 or tiny: slope 0
             harmonic = (w1 + w2) / (w1 / m[:-1] + w2 / m[1:])
         d[1:-1] = np.where(same, harmonic, 0.0)
         d[0] = _end_slope(h[0], h[1], m[0], m[1])
