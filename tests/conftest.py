@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import os
+
 import numpy as np
 import pytest
 from hypothesis import settings
@@ -9,8 +11,9 @@ from hypothesis import settings
 from voicer.resources import DEMO_PIANO, bundled_pianos
 from voicer.tone.preset import Preset, load_preset
 
-# No per-example deadline: the shared 2-core CI machine has noisy timing.
-settings.register_profile("voicer", deadline=None, max_examples=60)
+# No per-example deadline: the shared 2-core CI machine has noisy timing. On CI the
+# examples are derandomized so that a run is reproducible.
+settings.register_profile("voicer", deadline=None, max_examples=60, derandomize=bool(os.environ.get("CI")))
 settings.load_profile("voicer")
 
 

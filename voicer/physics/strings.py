@@ -32,6 +32,7 @@ __all__ = [
     "fletcher_clamped_ratios",
     "partial_ratios",
     "mode_shapes",
+    "bridge_force_factors",
     "loss_rates",
     "t60_s",
     "strike_weights",
@@ -217,6 +218,49 @@ def mode_shapes(b: float, n: ArrayLike, x_over_l: ArrayLike, *, end: EndConditio
     ni = n_arr.astype(np.int64)
     sign = np.where(odd, (-1.0) ** ((ni - 1) // 2), (-1.0) ** (ni // 2))
     return sign * u * np.sqrt(0.5 / norm)
+
+
+def bridge_force_factors(b: float, n: ArrayLike, *, end: EndCondition = "pinned") -> NDArray[np.float64]:
+    """Force on the bridge per unit modal displacement, in units of ``T / L``.
+
+    The string pulls on its end support with ``T u_x - E I u_xxx`` at ``x = L`` (tension
+    times slope, plus the shear force of bending, which the flexible-string readout
+    leaves out). With the shapes of :func:`mode_shapes`:
+
+    * pinned: ``(-1)^n n pi (1 + B n^2)`` exactly;
+    * clamped: the slope vanishes and only the shear remains, ``-(B / pi^2) u_xxx(1)``.
+
+    Parameters
+    ----------
+    b : float >= 0
+        Inharmonicity coefficient.
+    n : array_like of int >= 1
+        Partial numbers.
+    end : {'pinned', 'clamped'}
+        End condition.
+    """
+    n_arr = np.asarray(n, dtype=float)
+    if end == "pinned" or b == 0:
+        partial_ratios(b, 1, end=end)  # validates b and end
+        return (-1.0) ** n_arr * n_arr * np.pi * (1.0 + b * n_arr**2)
+    if end != "clamped":
+        raise ParameterError(f"end condition {end!r} must be one of {', '.join(END_CONDITIONS)}")
+    _check_b(np.asarray(b, dtype=float))
+    k = _clamped_wavenumbers(np.full(n_arr.shape, float(b)), n_arr)
+    kappa = np.sqrt(k**2 + np.pi**2 / b)
+    odd = (n_arr.astype(np.int64) % 2) == 1
+    t = _exp_tanh(kappa / 2.0)
+    s, c = np.sin(k / 2.0), np.cos(k / 2.0)
+    # Third derivative at a = 1/2 of the unnormalised shapes of mode_shapes().
+    d3 = np.where(odd, k**3 * s - c * kappa**3 * t, -(k**3) * c - s * kappa**3 / t)
+    e_y = np.exp(-kappa)
+    sech2_half = 4.0 * e_y / (1.0 + e_y) ** 2
+    csch2_half = 4.0 * e_y / (1.0 - e_y) ** 2
+    norm = np.where(odd, 0.5 + np.sin(k) / (2.0 * k) + c**2 * (0.5 * sech2_half + t / kappa),
+                    0.5 - np.sin(k) / (2.0 * k) + s**2 * (1.0 / (t * kappa) - 0.5 * csch2_half))
+    ni = n_arr.astype(np.int64)
+    sign = np.where(odd, (-1.0) ** ((ni - 1) // 2), (-1.0) ** (ni // 2))
+    return -(b / np.pi**2) * sign * d3 * np.sqrt(0.5 / norm)
 
 
 def loss_rates(freq_hz: ArrayLike, b1_per_s: float, b3_s: float) -> NDArray[np.float64]:

@@ -22,6 +22,7 @@ from dataclasses import dataclass
 from typing import Any, Literal
 
 from ..errors import ParameterError
+from ..physics.felt import FELT_LAWS
 from ..physics.strings import END_CONDITIONS
 from ..physics.tuning import HIGHEST_KEY, LOWEST_KEY
 
@@ -141,6 +142,15 @@ KEY_PARAMS: tuple[Param, ...] = (
           lo=0.0, hi=1.0e5, lo_open=True, interp="log"),
     Param("felt_exponent", "float", "", "power-law exponent p of the felt (Hall; Boutillon 1988)",
           lo=1.0, hi=6.0),
+    Param("felt_hysteresis", "float", "", "Stulov's hereditary amplitude eps (felt_law = 'stulov'; 0 = elastic)",
+          lo=0.0, hi=1.0, hi_open=True, default=0.0),
+    Param("felt_relaxation_us", "float", "us", "Stulov's relaxation time tau0 of the felt",
+          lo=0.0, hi=1.0e5, lo_open=True, default=100.0, interp="log"),
+    Param("mating_1_mm", "float", "mm",
+          "how much nearer the hammer string 1 (bass side) of the unison sits: meets it earlier and harder",
+          lo=-2.0, hi=2.0, default=0.0),
+    Param("mating_2_mm", "float", "mm", "the same for string 2", lo=-2.0, hi=2.0, default=0.0),
+    Param("mating_3_mm", "float", "mm", "the same for string 3 (treble side)", lo=-2.0, hi=2.0, default=0.0),
     Param("loss_b1_per_s", "float", "1/s", "frequency-independent decay rate b1 (sigma = b1 + b3 omega^2)",
           lo=0.0, hi=100.0),
     Param("loss_b3_s", "float", "s", "decay-rate coefficient b3 of omega^2 (Chaigne & Askenfelt 1994)",
@@ -157,6 +167,15 @@ INSTRUMENT_PARAMS: tuple[Param, ...] = (
     Param("description", "str", "", "free text: where it stands, its state", default=""),
     Param("a4_hz", "float", "Hz", "reference pitch of A4 (ISO 16: 440 Hz)", lo=380.0, hi=480.0, default=440.0),
     Param("end_condition", "str", "", "how the string ends are modelled", default="pinned", choices=END_CONDITIONS),
+    Param("felt_law", "str", "", "hammer felt force law: power (Hall; Boutillon) or stulov (Stulov 1995)",
+          default="power", choices=FELT_LAWS),
+    Param("speed_at_velocity_1_m_s", "float", "m/s", "hammer speed for MIDI velocity 1",
+          lo=0.05, hi=10.0, default=0.5),
+    Param("speed_at_velocity_127_m_s", "float", "m/s", "hammer speed for MIDI velocity 127 "
+          "(Russell & Rossing 1998: about 1-6 m/s over the dynamic range)", lo=0.1, hi=15.0, default=6.0),
+    Param("velocity_curve", "float", "",
+          "shape of the velocity map: log(speed) is linear in ((velocity - 1) / 126)^curve",
+          lo=0.2, hi=5.0, default=1.0),
     Param("last_wound_key", "int", "", f"highest key with wound strings ({LOWEST_KEY - 1} = none)",
           lo=LOWEST_KEY - 1, hi=HIGHEST_KEY, default=LOWEST_KEY - 1),
 )

@@ -94,6 +94,19 @@ class Preset:
         """Keys with wound strings."""
         return range(LOWEST_KEY, self.instrument["last_wound_key"] + 1)
 
+    def with_key_values(self, key: int, values: Mapping[str, Any]) -> "Preset":
+        """A copy with per-key overrides for one key, validated like the file.
+
+        Raises
+        ------
+        PresetError
+            If a field is unknown or a value out of range (naming this preset's file).
+        """
+        data = self.to_dict()
+        overrides = data.setdefault("override", {})
+        overrides[str(key)] = {**overrides.get(str(key), {}), **values}
+        return parse_preset(data, source=self.source)
+
     def to_dict(self) -> dict[str, Any]:
         """Plain data as written to TOML."""
         out: dict[str, Any] = {"format": FORMAT_VERSION, "instrument": dict(self.instrument)}
@@ -206,6 +219,7 @@ def parse_preset(data: Mapping[str, Any], *, source: str | None = None) -> Prese
         source=source,
     )
     _check_winding(preset)
+    _check_consistency(preset)
     preset.scale  # noqa: B018 - derive now so that bad physics is reported at load
     return preset
 
@@ -225,6 +239,26 @@ def _check_winding(preset: Preset) -> None:
     if last_wound >= LOWEST_KEY and not any(name in a for a in preset.anchors for name in WINDING_FIELDS):
         raise _err(source, f"keys {LOWEST_KEY}..{last_wound} are wound (last_wound_key) but no anchor gives "
                    "winding_diameter_mm or winding_mass_g_per_m", field_name=WINDING_FIELDS[0])
+
+
+def _check_consistency(preset: Preset) -> None:
+    """Rules that tie fields together."""
+    source, inst = preset.source, preset.instrument
+    if inst["speed_at_velocity_1_m_s"] >= inst["speed_at_velocity_127_m_s"]:
+        raise _err(source, f"speed_at_velocity_1_m_s = {inst['speed_at_velocity_1_m_s']:g} must be below "
+                   f"speed_at_velocity_127_m_s = {inst['speed_at_velocity_127_m_s']:g}",
+                   field_name="speed_at_velocity_1_m_s")
+    hysteresis = preset.resolved["felt_hysteresis"]
+    if inst["felt_law"] != "stulov" and np.any(hysteresis > 0):
+        key = int(KEYS[np.argmax(hysteresis > 0)])
+        raise _err(source, f"felt_hysteresis needs [instrument] felt_law = \"stulov\" (it is {inst['felt_law']!r})",
+                   key=key, field_name="felt_hysteresis")
+    strings = preset.resolved["strings"]
+    for key, fields in preset.overrides.items():
+        for s in (2, 3):
+            if f"mating_{s}_mm" in fields and strings[key - LOWEST_KEY] < s:
+                raise _err(source, f"this key has {int(strings[key - LOWEST_KEY])} string(s); "
+                           f"mating_{s}_mm does not apply", key=key, field_name=f"mating_{s}_mm")
 
 
 def _interpolate(param: Param, xs: list[int], ys: list[float], keys: NDArray[np.int64]) -> NDArray[np.float64]:
