@@ -30,3 +30,9 @@ def demo_path():
 @pytest.fixture(scope="session")
 def demo(demo_path) -> Preset:
     return load_preset(demo_path)
+
+
+@pytest.fixture(autouse=True)
+def private_cache(tmp_path, monkeypatch):
+    """Every test gets its own table cache; nothing is written to the user's."""
+    monkeypatch.setenv("VOICER_CACHE_DIR", str(tmp_path / "cache"))

@@ -76,7 +76,7 @@ def test_usage_errors_exit_2(argv, capsys) -> None:
     assert info.value.code == 2
 
 
-@pytest.mark.parametrize("command", ["demo", "scale"])
+@pytest.mark.parametrize("command", ["demo", "scale", "inspect"])
 def test_help_has_an_example(command, capsys) -> None:
     with pytest.raises(SystemExit) as info:
         main([command, "--help"])
@@ -88,3 +88,66 @@ def test_module_entry_point() -> None:
     done = subprocess.run([sys.executable, "-m", "voicer", "scale", "demo", "--json"],
                           capture_output=True, text=True, check=True)
     assert len(json.loads(done.stdout)["keys"]) == 88
+
+
+# --- voicer inspect ------------------------------------------------------------------
+
+INSPECT_FIELDS = {"key", "velocity", "hammer_speed_m_s", "contact_ms", "peak_force_n", "partials"}
+
+
+def test_inspect_json_schema(capsys, demo) -> None:
+    code, out, err = run(capsys, "inspect", "demo", "--key", "60", "--velocity", "64", "--json")
+    assert code == 0 and err == ""
+    data = json.loads(out)
+    assert INSPECT_FIELDS <= set(data)
+    assert data["key"] == 60 and data["velocity"] == 64
+    assert 1.5 < data["contact_ms"] < 4.0 and data["peak_force_n"] > 0
+    first = data["partials"][0]
+    assert {"n", "freq_hz", "level_db", "t60_s"} <= set(first)
+    assert first["n"] == 1 and first["freq_hz"] == pytest.approx(demo.scale.f1_hz[60 - 21], rel=1e-5)
+    assert len(data["partials"]) == 24
+
+
+def test_inspect_text(capsys) -> None:
+    code, out, _ = run(capsys, "inspect", "demo", "--key", "40", "--velocity", "90", "--partials", "8")
+    assert code == 0
+    assert out.startswith("key 40 (E2), velocity 90: hammer at 2.89 m/s on 2 string(s)")
+    assert "contact" in out and "peak force" in out
+    assert len([line for line in out.splitlines() if line[:4].strip().isdigit()]) == 8
+
+
+def test_inspect_set_changes_the_prediction(capsys) -> None:
+    _, soft, _ = run(capsys, "inspect", "demo", "--key", "60", "--json", "--set", "felt_force_1mm_n=70")
+    _, hard, _ = run(capsys, "inspect", "demo", "--key", "60", "--json", "--set", "felt_force_1mm_n=280")
+    assert json.loads(hard)["contact_ms"] < json.loads(soft)["contact_ms"]
+
+
+@pytest.mark.parametrize("setting, message", [
+    ("strike_ratio=0.6", "key 60: field 'strike_ratio': 0.6 is outside the allowed range 0 < x < 0.5"),
+    ("hardness=2", "--set hardness: not a per-key field"),
+    ("strike_ratio", "expected FIELD=VALUE"),
+    ("felt_exponent=soft", "field 'felt_exponent': expected a number"),
+])
+def test_inspect_set_is_validated(capsys, setting, message) -> None:
+    code, out, err = run(capsys, "inspect", "demo", "--key", "60", "--set", setting)
+    assert code == 2 and out == "" and message in err and err.count("\n") == 1
+
+
+def test_inspect_plot(capsys, tmp_path) -> None:
+    png = tmp_path / "c4.png"
+    code, out, _ = run(capsys, "inspect", "demo", "--key", "60", "--plot", str(png))
+    assert code == 0 and png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and f"plot written to {png}" in out
+
+
+@pytest.mark.parametrize("argv", [["inspect", "demo"], ["inspect", "demo", "--key", "20"],
+                                  ["inspect", "demo", "--key", "60", "--velocity", "128"]])
+def test_inspect_usage_errors(argv) -> None:
+    with pytest.raises(SystemExit) as info:
+        main(argv)
+    assert info.value.code == 2
+
+
+def test_plot_without_matplotlib_says_what_to_install(capsys, tmp_path, monkeypatch) -> None:
+    monkeypatch.setitem(sys.modules, "matplotlib", None)  # import fails as if not installed
+    code, _, err = run(capsys, "inspect", "demo", "--key", "60", "--plot", str(tmp_path / "x.png"))
+    assert code == 2 and "plots need matplotlib: pip install 'voicer[plots]'" in err

@@ -285,3 +285,20 @@ def test_failed_save_leaves_the_old_file(demo, tmp_path, monkeypatch) -> None:
 def test_saved_text_is_readable(demo) -> None:
     text = preset_to_toml(demo)
     assert text.startswith("format = 1\n") and "[[anchor]]\nkey = 21\n" in text
+
+
+def test_hysteresis_needs_the_stulov_law(data, tmp_path) -> None:
+    anchor(data, 60)["felt_hysteresis"] = 0.2
+    expect_error(tmp_path, data, "field 'felt_hysteresis'", 'felt_law = "stulov"')
+    data["instrument"]["felt_law"] = "stulov"
+    assert load_preset(write(tmp_path, data, "ok.toml")).resolved["felt_hysteresis"][60 - 21] == 0.2
+
+
+def test_mating_of_a_string_the_key_does_not_have(data, tmp_path) -> None:
+    data["override"] = {"40": {"mating_3_mm": 0.2}}
+    expect_error(tmp_path, data, "key 40", "field 'mating_3_mm'", "2 string(s)")
+
+
+def test_velocity_map_must_rise(data, tmp_path) -> None:
+    data["instrument"]["speed_at_velocity_1_m_s"] = 7.0
+    expect_error(tmp_path, data, "field 'speed_at_velocity_1_m_s'", "must be below")

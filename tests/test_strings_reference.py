@@ -8,12 +8,15 @@ solver is used for the reference.
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import pytest
 from scipy.linalg import eig_banded, solve_banded
 
 from voicer.physics.strings import (
     FLETCHER_CLAMPED_MAX_B,
+    bridge_force_factors,
     clamped_ratios,
     fletcher_clamped_ratios,
     mode_shapes,
@@ -167,3 +170,25 @@ def test_clamped_shape_end_conditions() -> None:
     np.testing.assert_allclose(u[:, [0, 3]], 0.0, atol=1e-12)
     slope = u[:, 1] / 1e-7  # u'(0) ~ u(h)/h must vanish (clamped) compared with n pi for sin
     assert np.max(np.abs(slope) / (np.pi * np.arange(1, 31))) < 1e-3
+
+
+def test_bridge_force_factors() -> None:
+    """Force on the bridge per unit modal amplitude, T u_x - E I u_xxx at x = L, in T/L.
+
+    Pinned: (-1)^n n pi (1 + B n^2) from u = sin(n pi x). Clamped: the shear of the exact
+    shapes, checked by a fourth-order finite-difference third derivative of mode_shapes
+    near the end, and tending to the pinned value as B -> 0."""
+    n = np.arange(1, 11)
+    b = 3e-3
+    np.testing.assert_allclose(bridge_force_factors(b, n), (-1.0) ** n * n * np.pi * (1 + b * n**2), rtol=1e-14)
+    h = 2e-5
+    offsets = -h * np.arange(7)  # seven points ending at x = 1
+    u = mode_shapes(b, n, 1.0 + offsets, end="clamped")
+    # One-sided third derivative, error O(h^4): weights from the Taylor conditions
+    # sum_j w_j d_j^k / k! = [k == 3], k = 0..6.
+    taylor = np.array([offsets**k / math.factorial(k) for k in range(7)])
+    w = np.linalg.solve(taylor, np.eye(7)[3])
+    d3 = u @ w
+    np.testing.assert_allclose(-(b / np.pi**2) * d3, bridge_force_factors(b, n, end="clamped"), rtol=2e-3)
+    small = bridge_force_factors(1e-8, n, end="clamped") / bridge_force_factors(1e-8, n)
+    np.testing.assert_allclose(small, 1.0, atol=1e-3)

@@ -45,7 +45,7 @@ class StepSettings:
         Multiplies every step (0.5 halves them: convergence checks).
     """
 
-    steps_per_contact: float = 240.0
+    steps_per_contact: float = 120.0
     stability: float = 0.5
     alias: float = np.pi / 2
     scale: float = 1.0

@@ -42,7 +42,7 @@ from .preset import Preset
 from .velocity import DEFAULT_LAYERS, DEFAULT_MAX_SPEED_M_S, DEFAULT_MIN_SPEED_M_S, hammer_speed, layer_speeds
 
 #: Bumped whenever the model changes what a table contains, so old cache entries miss.
-TABLE_MODEL_VERSION = 2
+TABLE_MODEL_VERSION = 3
 
 _MAX_ROWS = 768  # string rows per batch: large enough to amortise the per-step overhead
 _PAD_RATIO = 0.7  # a batch holds keys with at least this fraction of its largest mode count
@@ -63,6 +63,8 @@ class TableSettings:
         Partials are kept below 0.45 of it.
     max_partials : int
         Cap on partials per key.
+    extra_modes : int
+        Modes above the band simulated in the blow and then dropped.
     steps : StepSettings
         Time-step rules of the contact simulation.
     """
@@ -72,6 +74,7 @@ class TableSettings:
     max_speed_m_s: float = DEFAULT_MAX_SPEED_M_S
     sample_rate_hz: float = DEFAULT_SAMPLE_RATE_HZ
     max_partials: int = DEFAULT_MAX_PARTIALS
+    extra_modes: int = 8
     steps: StepSettings = field(default_factory=StepSettings)
 
     def speeds(self) -> NDArray[np.float64]:
@@ -173,12 +176,16 @@ def _key_modes(preset: Preset, key: int, settings: TableSettings) -> dict[str, A
     scale = preset.scale
     i = scale.index(key)
     v = scale.values
-    modes = scale.modes(key, sample_rate_hz=settings.sample_rate_hz, max_partials=settings.max_partials)
+    band = len(scale.modes(key, sample_rate_hz=settings.sample_rate_hz, max_partials=settings.max_partials).n)
+    # A few modes beyond the band take part in the blow (a short treble pulse still drives
+    # them) and are dropped from the table; the rest yield statically (residual).
+    modes = scale.modes(key, sample_rate_hz=float("inf"), max_partials=band + settings.extra_modes)
     length = float(v["speaking_length_m"][i])
     b = float(scale.b[i])
     beta, width = float(v["strike_ratio"][i]), float(v["hammer_width_mm"][i]) * 1e-3 / length
     modal_mass = float(scale.linear_mass_kg_per_m[i]) * length / 2.0
     return {
+        "band": band,
         "modes": modes,
         "coupling": coupling_weights(b, modes.n, beta, width, end=scale.end),
         "residual": residual_compliance(b, modes.f0_hz, len(modes.n) + 1, beta, width, modal_mass, end=scale.end),
@@ -252,18 +259,18 @@ def simulate_blows(preset: Preset, keys: Iterable[int], speeds_m_s: Iterable[flo
     row = 0
     for k in keys:
         d, m = info[k], info[k]["modes"]
-        n, n_s = len(m.n), d["strings"]
+        n, n_s = d["band"], d["strings"]
         h0 = keys.index(k) * len(speeds)
         first_row = row
         amp = np.empty((len(speeds), n_s, n), dtype=complex)
         for j in range(len(speeds)):
             for s in range(n_s):
-                amp[j, s] = 2.0 * d["bridge"] * result.eta0[row, :n]
+                amp[j, s] = 2.0 * d["bridge"][:n] * result.eta0[row, :n]
                 row += 1
         hs = slice(h0, h0 + len(speeds))
         tables[k] = KeyTable(
             key=k, speeds_m_s=speeds.copy(), freq_hz=result.lam[first_row, :n].imag / (2 * np.pi),
-            sigma_per_s=m.sigma_per_s.copy(), amplitude_n=amp, contact_s=result.contact_s[hs].copy(),
+            sigma_per_s=m.sigma_per_s[:n].copy(), amplitude_n=amp, contact_s=result.contact_s[hs].copy(),
             peak_force_n=result.peak_force_n[hs].copy(), rebound_m_s=result.rebound_m_s[hs].copy(),
             contacts=result.contacts[hs].copy())
         dts[k] = problem.dt_s[hs].copy()
@@ -329,7 +336,7 @@ def build_tables(preset: Preset, *, settings: TableSettings = TableSettings(), k
     if missing:
         scale = preset.scale
         modes = {k: len(scale.modes(k, sample_rate_hz=settings.sample_rate_hz, max_partials=settings.max_partials).n)
-                 for k in missing}
+                 + settings.extra_modes for k in missing}
         strings = {k: int(scale.value("strings", k)) for k in missing}
         speeds = settings.speeds()
         with tqdm(total=len(missing), unit="key", desc="modal tables", disable=not progress, leave=False) as bar:
