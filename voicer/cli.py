@@ -42,6 +42,7 @@ def _cmd_demo(args: argparse.Namespace) -> int:
     preset = load_preset(path)
     print(f"voicer demo: the bundled instrument {DEMO_PIANO} ({path})\n")
     print(format_scale_table(scale_report(preset)))
+    print("\nNext: hear what one blow does, e.g.  voicer inspect demo --key 60 --velocity 64")
     return 0
 
 
