@@ -166,6 +166,39 @@ def partial_ratios(b: ArrayLike, n: ArrayLike, *, end: EndCondition = "pinned") 
     raise ParameterError(f"end condition {end!r} must be one of {', '.join(END_CONDITIONS)}")
 
 
+@dataclass(frozen=True)
+class _ClampedBasis:
+    """Wavenumbers, parities and normalisation of clamped modes (see mode_shapes)."""
+
+    k: NDArray[np.float64]
+    kappa: NDArray[np.float64]
+    odd: NDArray[np.bool_]
+    s: NDArray[np.float64]  # sin(k/2)
+    c: NDArray[np.float64]  # cos(k/2)
+    t: NDArray[np.float64]  # tanh(kappa/2)
+    scale: NDArray[np.float64]  # sign and factor that normalise the shape like sin(n pi x)
+
+
+def _clamped_basis(b: float, n_arr: NDArray[np.float64]) -> _ClampedBasis:
+    _check_b(np.asarray(b, dtype=float))
+    k = _clamped_wavenumbers(np.full(n_arr.shape, float(b)), n_arr)
+    kappa = np.sqrt(k**2 + np.pi**2 / b)
+    odd = (n_arr.astype(np.int64) % 2) == 1
+    s, c = np.sin(k / 2.0), np.cos(k / 2.0)
+    t = _exp_tanh(kappa / 2.0)
+    # Closed-form integral of u^2 over the string; the cross terms vanish at an eigenvalue.
+    e_y = np.exp(-kappa)
+    sech2_half = 4.0 * e_y / (1.0 + e_y) ** 2  # 1/cosh^2(kappa/2)
+    csch2_half = 4.0 * e_y / (1.0 - e_y) ** 2  # 1/sinh^2(kappa/2)
+    norm = np.where(odd, 0.5 + np.sin(k) / (2.0 * k) + c**2 * (0.5 * sech2_half + t / kappa),
+                    0.5 - np.sin(k) / (2.0 * k) + s**2 * (1.0 / (t * kappa) - 0.5 * csch2_half))
+    # Match the sign of sin(n pi x): sin(n pi (a + 1/2)) = (-1)^((n-1)/2) cos(n pi a) for odd n,
+    # (-1)^(n/2) sin(n pi a) for even n.
+    ni = n_arr.astype(np.int64)
+    sign = np.where(odd, (-1.0) ** ((ni - 1) // 2), (-1.0) ** (ni // 2))
+    return _ClampedBasis(k=k, kappa=kappa, odd=odd, s=s, c=c, t=t, scale=sign * np.sqrt(0.5 / norm))
+
+
 def mode_shapes(b: float, n: ArrayLike, x_over_l: ArrayLike, *, end: EndCondition = "pinned") -> NDArray[np.float64]:
     """Mode shapes ``u_n(x)``, shape ``(len(n), len(x))``.
 
@@ -193,31 +226,15 @@ def mode_shapes(b: float, n: ArrayLike, x_over_l: ArrayLike, *, end: EndConditio
         return np.sin(n_arr * np.pi * x)
     if end != "clamped":
         raise ParameterError(f"end condition {end!r} must be one of {', '.join(END_CONDITIONS)}")
-    _check_b(np.asarray(b, dtype=float))
-    k = _clamped_wavenumbers(np.full(n_arr.shape, float(b)), n_arr)
-    kappa = np.sqrt(k**2 + np.pi**2 / b)
-    odd = (n_arr.astype(np.int64) % 2) == 1
+    cb = _clamped_basis(b, n_arr)
     a = x - 0.5  # centred coordinate: odd n are even functions of a, even n odd ones
-    y = kappa / 2.0
-    decay = np.exp(kappa * (np.abs(a) - 0.5))  # cosh(kappa a)/cosh(kappa/2) without overflow
-    e_a = np.exp(-2.0 * kappa * np.abs(a))
-    e_y = np.exp(-2.0 * y)
+    decay = np.exp(cb.kappa * (np.abs(a) - 0.5))  # cosh(kappa a)/cosh(kappa/2) without overflow
+    e_a = np.exp(-2.0 * cb.kappa * np.abs(a))
+    e_y = np.exp(-cb.kappa)
     cosh_ratio = decay * (1.0 + e_a) / (1.0 + e_y)
     sinh_ratio = np.sign(a) * decay * (1.0 - e_a) / (1.0 - e_y)
-    s, c = np.sin(k / 2.0), np.cos(k / 2.0)
-    u = np.where(odd, np.cos(k * a) - c * cosh_ratio, np.sin(k * a) - s * sinh_ratio)
-    # Closed-form integral of u^2 over the string; the cross terms vanish at an eigenvalue.
-    sech2_half = 4.0 * e_y / (1.0 + e_y) ** 2  # 1/cosh^2(y)
-    csch2_half = 4.0 * e_y / (1.0 - e_y) ** 2  # 1/sinh^2(y)
-    t = _exp_tanh(y)
-    norm_odd = 0.5 + np.sin(k) / (2.0 * k) + c**2 * (0.5 * sech2_half + t / kappa)
-    norm_even = 0.5 - np.sin(k) / (2.0 * k) + s**2 * (1.0 / (t * kappa) - 0.5 * csch2_half)
-    norm = np.where(odd, norm_odd, norm_even)
-    # Match the sign of sin(n pi x): sin(n pi (a + 1/2)) = (-1)^((n-1)/2) cos(n pi a) for odd n,
-    # (-1)^(n/2) sin(n pi a) for even n.
-    ni = n_arr.astype(np.int64)
-    sign = np.where(odd, (-1.0) ** ((ni - 1) // 2), (-1.0) ** (ni // 2))
-    return sign * u * np.sqrt(0.5 / norm)
+    u = np.where(cb.odd, np.cos(cb.k * a) - cb.c * cosh_ratio, np.sin(cb.k * a) - cb.s * sinh_ratio)
+    return cb.scale * u
 
 
 def bridge_force_factors(b: float, n: ArrayLike, *, end: EndCondition = "pinned") -> NDArray[np.float64]:
@@ -245,22 +262,10 @@ def bridge_force_factors(b: float, n: ArrayLike, *, end: EndCondition = "pinned"
         return (-1.0) ** n_arr * n_arr * np.pi * (1.0 + b * n_arr**2)
     if end != "clamped":
         raise ParameterError(f"end condition {end!r} must be one of {', '.join(END_CONDITIONS)}")
-    _check_b(np.asarray(b, dtype=float))
-    k = _clamped_wavenumbers(np.full(n_arr.shape, float(b)), n_arr)
-    kappa = np.sqrt(k**2 + np.pi**2 / b)
-    odd = (n_arr.astype(np.int64) % 2) == 1
-    t = _exp_tanh(kappa / 2.0)
-    s, c = np.sin(k / 2.0), np.cos(k / 2.0)
+    cb = _clamped_basis(b, n_arr)
     # Third derivative at a = 1/2 of the unnormalised shapes of mode_shapes().
-    d3 = np.where(odd, k**3 * s - c * kappa**3 * t, -(k**3) * c - s * kappa**3 / t)
-    e_y = np.exp(-kappa)
-    sech2_half = 4.0 * e_y / (1.0 + e_y) ** 2
-    csch2_half = 4.0 * e_y / (1.0 - e_y) ** 2
-    norm = np.where(odd, 0.5 + np.sin(k) / (2.0 * k) + c**2 * (0.5 * sech2_half + t / kappa),
-                    0.5 - np.sin(k) / (2.0 * k) + s**2 * (1.0 / (t * kappa) - 0.5 * csch2_half))
-    ni = n_arr.astype(np.int64)
-    sign = np.where(odd, (-1.0) ** ((ni - 1) // 2), (-1.0) ** (ni // 2))
-    return -(b / np.pi**2) * sign * d3 * np.sqrt(0.5 / norm)
+    d3 = np.where(cb.odd, cb.k**3 * cb.s - cb.c * cb.kappa**3 * cb.t, -(cb.k**3) * cb.c - cb.s * cb.kappa**3 / cb.t)
+    return -(b / np.pi**2) * cb.scale * d3
 
 
 def loss_rates(freq_hz: ArrayLike, b1_per_s: float, b3_s: float) -> NDArray[np.float64]:
