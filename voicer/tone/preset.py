@@ -248,6 +248,9 @@ def _check_consistency(preset: Preset) -> None:
         raise _err(source, f"speed_at_velocity_1_m_s = {inst['speed_at_velocity_1_m_s']:g} must be below "
                    f"speed_at_velocity_127_m_s = {inst['speed_at_velocity_127_m_s']:g}",
                    field_name="speed_at_velocity_1_m_s")
+    if inst["half_pedal_low_cc"] >= inst["half_pedal_high_cc"]:
+        raise _err(source, f"half_pedal_low_cc = {inst['half_pedal_low_cc']} must be below half_pedal_high_cc = "
+                   f"{inst['half_pedal_high_cc']}", field_name="half_pedal_low_cc")
     hysteresis = preset.resolved["felt_hysteresis"]
     if inst["felt_law"] != "stulov" and np.any(hysteresis > 0):
         key = int(KEYS[np.argmax(hysteresis > 0)])

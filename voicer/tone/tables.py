@@ -120,24 +120,29 @@ class KeyTable:
         return cls(**{name: (int(arrays[name]) if name == "key" else arrays[name]) for name in cls.__dataclass_fields__})
 
     def at_speed(self, speed_m_s: float) -> NDArray[np.complex128]:
-        """Partial amplitudes (summed over the unison) at any hammer speed.
+        """Partial amplitudes (summed over the unison) at any hammer speed; see
+        :meth:`at_speeds`."""
+        return self.at_speeds(np.array([speed_m_s]))[0]
+
+    def at_speeds(self, speeds_m_s: NDArray[np.float64]) -> NDArray[np.complex128]:
+        """Partial amplitudes (summed over the unison) at several hammer speeds, (S, N).
 
         Log-magnitude and unwrapped phase are interpolated across the layers by a
         monotone cubic in log(speed). Beyond the outer layers the nearest layer's
         spectrum is scaled in proportion to the speed.
         """
-        if not speed_m_s > 0:
-            raise ParameterError(f"hammer speed {speed_m_s} m/s must be > 0")
+        speeds = np.asarray(speeds_m_s, dtype=float)
+        if np.any(~(speeds > 0)):
+            raise ParameterError(f"hammer speeds {speeds} m/s must be > 0")
         total = self.amplitude_n.sum(axis=1)
-        v_lo, v_hi = float(self.speeds_m_s[0]), float(self.speeds_m_s[-1])
-        v = min(max(speed_m_s, v_lo), v_hi)
+        v = np.clip(speeds, self.speeds_m_s[0], self.speeds_m_s[-1])
         mag = np.abs(total)
         floor = _FLOOR * max(float(mag.max()), 1e-300)
         log_mag = np.log(np.maximum(mag, floor))
         phase = np.unwrap(np.angle(total), axis=0)
         x = np.log(self.speeds_m_s)
         out = np.exp(pchip(x, log_mag, np.log(v)) + 1j * pchip(x, phase, np.log(v)))
-        return out * (speed_m_s / v)
+        return out * (speeds / v)[:, None]
 
 
 @dataclass(frozen=True, eq=False)

@@ -1,0 +1,304 @@
+"""Oscillator bank: the hot kernel of the live engine.
+
+Every sounding partial is a decaying complex exponential ``c_k p_k^n`` with
+``p_k = exp(lambda_k)``, ``lambda_k = (-sigma_k + i omega_k) / fs``; the output is
+``y[n] = Re sum_k c_k p_k^n``. A block of ``frames <= max_block`` samples is one float32
+matrix product: with the sample index split as ``n = I j + i`` (``I = split``),
+
+    y[I j + i] = Re sum_k (c_k p_k^(I j)) p_k^i,
+
+i.e. the (J x K) matrix ``[c_k p_k^(I j)]`` times the (K x I) table ``[p_k^i]`` of each
+partial, written in real arithmetic as one ``(J, 2K) @ (2K, I)`` product (interleaved
+real and imaginary parts, the imaginary part of the table negated). The tables depend on
+the partial only and are computed when it is added. The master state ``c_k`` is
+complex128 and advanced once per block by ``p_k^frames``, so float32 rounding never
+accumulates: it is confined to one block (drift bounds in ``tests/test_bank.py``). Long
+float32 sums lose accuracy, so partials are summed in chunks and the chunks in float64.
+
+Partials live in slots ``0..count-1`` of preallocated arrays; a partial that has decayed
+below the threshold is removed by moving the last one into its slot (order does not
+matter for a sum). Nothing here allocates arrays after construction: every operation
+writes into preallocated buffers, so it may run inside an audio callback.
+"""
+
+from __future__ import annotations
+
+__all__ = ["OscillatorBank", "PartialTables", "partial_tables", "DEFAULT_SPLIT", "DEFAULT_CHUNK"]
+
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+from ..errors import ParameterError
+
+#: Samples per row of the block matrix (I): 16 rows of 16 make a 256-sample block.
+DEFAULT_SPLIT = 16
+#: Partials summed in one float32 product before the sum goes to float64.
+DEFAULT_CHUNK = 4096
+
+
+@dataclass(frozen=True, eq=False)
+class PartialTables:
+    """Everything the bank needs about a set of partials, computed ahead of time.
+
+    Built by :func:`partial_tables` off the audio thread; :meth:`OscillatorBank.add_tables`
+    and :meth:`OscillatorBank.retune` only copy from it.
+    """
+
+    lam: NDArray[np.complex128]  # (n,) log of the per-sample factor
+    table: NDArray[np.float32]  # (n, 2, split) [Re p^i, -Im p^i]
+    steps: NDArray[np.complex64]  # (rows, n) p^(I j)
+    advance: NDArray[np.complex128]  # (n,) p^max_block
+
+
+def partial_tables(lam: NDArray[np.complex128], *, split: int, max_block: int) -> PartialTables:
+    """Power tables of partials with per-sample log-factors ``lam`` (allocates)."""
+    lam = np.asarray(lam, dtype=np.complex128)
+    rows = -(-max_block // split)
+    tab = np.exp(np.outer(lam, np.arange(split)))
+    table = np.empty((len(lam), 2, split), dtype=np.float32)
+    table[:, 0] = tab.real
+    table[:, 1] = -tab.imag
+    steps = np.exp(np.outer(np.arange(rows) * split, lam)).astype(np.complex64)
+    return PartialTables(lam=lam.copy(), table=table, steps=steps, advance=np.exp(lam * max_block))
+
+
+class OscillatorBank:
+    """A pool of decaying complex exponentials rendered block by block.
+
+    Parameters
+    ----------
+    capacity : int > 0
+        Most partials at once.
+    max_block : int > 0
+        Longest block ``render`` is asked for.
+    split : int > 0
+        Samples per row of the block matrix.
+    chunk : int > 0
+        Partials per float32 partial sum.
+    """
+
+    def __init__(self, capacity: int, *, max_block: int = 256, split: int = DEFAULT_SPLIT,
+                 chunk: int = DEFAULT_CHUNK) -> None:
+        for name, value in (("capacity", capacity), ("max_block", max_block), ("split", split), ("chunk", chunk)):
+            if value < 1:
+                raise ParameterError(f"{name}={value} must be >= 1")
+        self.capacity, self.max_block, self.split, self.chunk = capacity, max_block, split, chunk
+        rows = -(-max_block // split)
+        self.count = 0
+        self.state = np.zeros(capacity, dtype=np.complex128)  # c_k at the next sample
+        self.lam = np.zeros(capacity, dtype=np.complex128)  # log of the per-sample factor
+        self.owner = np.full(capacity, -1, dtype=np.int64)  # who added the partial (the engine's voice)
+        self.index = np.zeros(capacity, dtype=np.int64)  # the owner's number for it (partial n)
+        self._table = np.zeros((capacity, 2, split), dtype=np.float32)  # [Re p^i, -Im p^i]
+        self._steps = np.zeros((rows, capacity), dtype=np.complex64)  # p^(I j), slots along the rows
+        self._advance = np.zeros(capacity, dtype=np.complex128)  # p^max_block
+        # Scratch, sized once.
+        self._c32 = np.zeros(capacity, dtype=np.complex64)
+        self._rows = np.zeros(rows * chunk, dtype=np.complex64)  # viewed as a contiguous (rows, k)
+        self._part = np.zeros((rows, split), dtype=np.float32)
+        self._sum = np.zeros((rows, split), dtype=np.float64)
+        self._scratch = np.zeros(capacity, dtype=np.complex128)
+        self._tab_scratch = np.zeros((capacity, split), dtype=np.complex128)
+        self._row_scratch = np.zeros((capacity, rows), dtype=np.complex128)
+        self._i = np.arange(split, dtype=np.float64)
+        self._j = np.arange(rows, dtype=np.float64) * split
+        self._mag = np.zeros(capacity, dtype=np.float64)
+        self._keep = np.zeros(capacity, dtype=bool)
+        self._hole_mask = np.zeros(capacity, dtype=bool)
+        self._slots = np.arange(capacity)
+        self._holes = np.zeros(capacity, dtype=np.int64)
+        self._movers = np.zeros(capacity, dtype=np.int64)
+        self._moved = [(arr, np.zeros_like(arr), 0) for arr in
+                       (self.state, self.lam, self.owner, self.index, self._table, self._advance)]
+        self._moved.append((self._steps, np.zeros_like(self._steps), 1))
+
+    # --- adding and changing partials ------------------------------------------------
+
+    def _fill_tables(self, lo: int, hi: int) -> None:
+        """Recompute the power tables of slots lo..hi-1 from their lambda."""
+        lam = self.lam[lo:hi, None]
+        tab = self._tab_scratch[: hi - lo]
+        np.multiply(lam, self._i[None, :], out=tab)
+        np.exp(tab, out=tab)
+        self._table[lo:hi, 0] = tab.real
+        np.negative(tab.imag, out=self._table[lo:hi, 1])
+        rows = self._row_scratch[: hi - lo]
+        np.multiply(lam, self._j[None, :], out=rows)
+        np.exp(rows, out=rows)
+        self._steps[:, lo:hi] = rows.T
+        adv = self._scratch[: hi - lo]
+        np.multiply(self.lam[lo:hi], float(self.max_block), out=adv)
+        np.exp(adv, out=self._advance[lo:hi])
+
+    def add(self, lam: NDArray[np.complex128], amplitude: NDArray[np.complex128], owner: int,
+            index: NDArray[np.int64] | None = None) -> int:
+        """Add partials; returns the first slot used (they occupy ``n`` consecutive slots
+        until partials are removed).
+
+        Parameters
+        ----------
+        lam : ndarray complex (n,)
+            ``(-sigma + i omega) / fs`` of each partial.
+        amplitude : ndarray complex (n,)
+            Complex amplitude at the next sample rendered.
+        owner : int
+            Recorded in ``owner`` for the caller's bookkeeping.
+        index : ndarray of int (n,), optional
+            Recorded in ``index`` (e.g. the partial number); default 0..n-1.
+
+        Raises
+        ------
+        ParameterError
+            If the bank has no room (the caller's voice limit should prevent this).
+        """
+        n = len(lam)
+        lo, hi = self.count, self.count + n
+        if hi > self.capacity:
+            raise ParameterError(f"oscillator bank full: {self.count} + {n} partials > capacity {self.capacity}")
+        self.lam[lo:hi] = lam
+        self.state[lo:hi] = amplitude
+        self.owner[lo:hi] = owner
+        self.index[lo:hi] = self._slots[:n] if index is None else index
+        self._fill_tables(lo, hi)
+        self.count = hi
+        return lo
+
+    def add_tables(self, tables: PartialTables, amplitude: NDArray[np.complex128], owner: int) -> int:
+        """Add partials from precomputed tables (no exponentials computed); ``index``
+        records each partial's row in ``tables``. Returns the first slot used."""
+        n = len(tables.lam)
+        lo, hi = self.count, self.count + n
+        if hi > self.capacity:
+            raise ParameterError(f"oscillator bank full: {self.count} + {n} partials > capacity {self.capacity}")
+        self.lam[lo:hi] = tables.lam
+        self.state[lo:hi] = amplitude
+        self.owner[lo:hi] = owner
+        self.index[lo:hi] = self._slots[:n]
+        self._table[lo:hi] = tables.table
+        self._steps[:, lo:hi] = tables.steps
+        self._advance[lo:hi] = tables.advance
+        self.count = hi
+        return lo
+
+    def retune(self, owner: int, tables: PartialTables) -> int:
+        """Give every partial of ``owner`` the decay and frequency of its row in ``tables``
+        (e.g. a damper falling on a key) from the next sample on. Returns how many."""
+        k = self.count
+        mask = self._keep[:k]
+        np.equal(self.owner[:k], owner, out=mask)
+        h = int(np.count_nonzero(mask))
+        if not h:
+            return 0
+        slots = np.compress(mask, self._slots[:k], out=self._holes[:h])
+        rows = np.compress(mask, self.index[:k], out=self._movers[:h])
+        for src, dst, buf, axis in ((tables.lam, self.lam, self._moved[1][1], 0),
+                                    (tables.table, self._table, self._moved[4][1], 0),
+                                    (tables.advance, self._advance, self._moved[5][1], 0),
+                                    (tables.steps, self._steps, self._moved[6][1], 1)):
+            if axis == 0:
+                np.take(src, rows, axis=0, out=buf[:h])
+                dst[slots] = buf[:h]
+            else:
+                np.take(src, rows, axis=1, out=buf[:, :h])
+                dst[:, slots] = buf[:, :h]
+        return h
+
+    def set_lambda(self, slots: slice, lam: NDArray[np.complex128]) -> None:
+        """Change the decay and frequency of a run of slots from the next sample on."""
+        self.lam[slots] = lam
+        self._fill_tables(slots.start, slots.stop)
+
+    # --- rendering ---------------------------------------------------------------
+
+    def render(self, out: NDArray[np.floating], frames: int) -> None:
+        """Add the next ``frames`` samples of the sum to ``out[:frames]`` and advance.
+
+        Parameters
+        ----------
+        out : ndarray float (>= frames,)
+            Accumulator (float32 or float64).
+        frames : int, 1 <= frames <= max_block
+            Samples to render.
+        """
+        if not 1 <= frames <= self.max_block:
+            raise ParameterError(f"frames={frames} must lie in 1..{self.max_block}")
+        k_all = self.count
+        if k_all:
+            rows = -(-frames // self.split)
+            acc = self._sum[:rows]
+            acc[:] = 0.0
+            np.copyto(self._c32[:k_all], self.state[:k_all], casting="same_kind")
+            for lo in range(0, k_all, self.chunk):
+                hi = min(lo + self.chunk, k_all)
+                k = hi - lo
+                a = self._rows[: rows * k].reshape(rows, k)
+                for j in range(rows):  # row by row: a 2-D strided product would make numpy buffer
+                    np.multiply(self._steps[j, lo:hi], self._c32[lo:hi], out=a[j])
+                part = self._part[:rows]
+                np.matmul(a.view(np.float32), self._table[lo:hi].reshape(2 * k, self.split), out=part)
+                acc += part
+            out[:frames] += acc.reshape(-1)[:frames]
+        self.advance(frames)
+
+    def advance(self, frames: int) -> None:
+        """Move every partial ``frames`` samples on without rendering."""
+        k = self.count
+        if not k:
+            return
+        if frames == self.max_block:
+            self.state[:k] *= self._advance[:k]
+        else:
+            step = self._scratch[:k]
+            np.multiply(self.lam[:k], float(frames), out=step)
+            np.exp(step, out=step)
+            self.state[:k] *= step
+
+    # --- removing partials -------------------------------------------------------
+
+    def cull(self, threshold: float) -> int:
+        """Remove partials whose magnitude is below ``threshold``; returns how many."""
+        k = self.count
+        if not k:
+            return 0
+        mag = self._mag[:k]
+        np.abs(self.state[:k], out=mag)
+        keep = self._keep[:k]
+        np.greater_equal(mag, threshold, out=keep)
+        return self._compact(keep)
+
+    def remove_owner(self, owner: int) -> int:
+        """Remove every partial of one owner; returns how many."""
+        k = self.count
+        keep = self._keep[:k]
+        np.not_equal(self.owner[:k], owner, out=keep)
+        return self._compact(keep)
+
+    def _compact(self, keep: NDArray[np.bool_]) -> int:
+        """Fill the holes below the new count with the survivors above it."""
+        k = self.count
+        n_keep = int(np.count_nonzero(keep))
+        if n_keep < k:
+            holes_mask, movers_mask = self._hole_mask[:n_keep], keep[n_keep:k]
+            np.logical_not(keep[:n_keep], out=holes_mask)
+            h = int(np.count_nonzero(movers_mask))  # as many survivors above as holes below
+            holes = np.compress(holes_mask, self._slots[:n_keep], out=self._holes[:h])
+            movers = np.compress(movers_mask, self._slots[n_keep:k], out=self._movers[:h])
+            for arr, buf, axis in self._moved:
+                if axis == 0:
+                    np.take(arr, movers, axis=0, out=buf[:h])
+                    arr[holes] = buf[:h]
+                else:
+                    np.take(arr, movers, axis=1, out=buf[:, :h])
+                    arr[:, holes] = buf[:, :h]
+            self.state[n_keep:k] = 0.0
+            self.owner[n_keep:k] = -1
+            self.count = n_keep
+        return k - n_keep
+
+    def clear(self) -> None:
+        """Remove every partial."""
+        self.state[: self.count] = 0.0
+        self.owner[: self.count] = -1
+        self.count = 0

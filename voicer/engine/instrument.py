@@ -1,0 +1,104 @@
+"""A voicing state made ready for the audio thread: per key, everything a voice copies.
+
+From a preset's modal tables this precomputes, per key,
+
+* the partials' power tables (:class:`~voicer.engine.bank.PartialTables`) for each
+  damper engagement level 0..``DAMPER_LEVELS`` (0: free, the top level: damper fully on)
+  and for a short fade (voice stealing, all sound off),
+* the partial amplitudes at every MIDI velocity 1..127 (interpolated between the
+  velocity layers through the preset's velocity map),
+* the una corda gain of each partial (a preset-defined spectral change for now:
+  ``una_corda_level_db`` plus ``una_corda_tilt_db_per_octave`` above the first partial),
+
+so that note-on, note-off and pedal changes only copy rows. The amplitudes are the
+strings' bridge force in newtons, summed over the unison.
+"""
+
+from __future__ import annotations
+
+__all__ = ["DAMPER_LEVELS", "FADE_S", "KeyData", "Instrument"]
+
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+from ..physics.constants import T60_LN
+from ..tone.tables import ModalTables
+from ..tone.velocity import hammer_speed
+from .bank import PartialTables, partial_tables
+
+#: Damper engagement is quantised to this many steps (half pedal); level 0 is free.
+DAMPER_LEVELS = 8
+#: Time for a stolen or silenced voice to fall 60 dB: short, but no click.
+FADE_S = 0.012
+
+
+@dataclass(frozen=True, eq=False)
+class KeyData:
+    """One key of a voicing state, ready to copy."""
+
+    key: int
+    freq_hz: NDArray[np.float64]
+    damped: bool
+    levels: tuple[PartialTables, ...]  # damper engagement 0..DAMPER_LEVELS, then the fade
+    amplitude: NDArray[np.complex128]  # (128, n): row v is MIDI velocity v (row 0 unused)
+    una_corda_gain: NDArray[np.float64]  # (n,)
+
+    @property
+    def fade(self) -> PartialTables:
+        return self.levels[-1]
+
+
+class Instrument:
+    """Every key of one voicing state, precomputed for a sample rate and block size.
+
+    Parameters
+    ----------
+    tables : ModalTables
+        The state's tables (all keys).
+    sample_rate : float
+        Output sample rate (the tables' partials must lie below its Nyquist limit).
+    max_block : int
+        Longest block the bank renders.
+    split : int
+        Rows of the bank's block matrix.
+    name : str
+        Shown in the status line ("A", "B").
+    """
+
+    def __init__(self, tables: ModalTables, *, sample_rate: float, max_block: int, split: int, name: str = "A") -> None:
+        preset = tables.preset
+        inst = preset.instrument
+        self.name = name
+        self.preset = preset
+        self.sample_rate = float(sample_rate)
+        self.last_damped_key = int(inst["last_damped_key"])
+        self.half_pedal = (int(inst["half_pedal_low_cc"]), int(inst["half_pedal_high_cc"]))
+        speeds = hammer_speed(np.arange(1, 128), inst)
+        scale = preset.scale
+        self.keys: dict[int, KeyData] = {}
+        for key, table in tables.keys.items():
+            i = scale.index(key)
+            damper = float(scale.values["damper_rate_per_s"][i])
+            levels = []
+            for level in range(DAMPER_LEVELS + 1):
+                sigma = table.sigma_per_s + damper * level / DAMPER_LEVELS
+                levels.append(partial_tables((-sigma + 2j * np.pi * table.freq_hz) / sample_rate,
+                                             split=split, max_block=max_block))
+            fade_sigma = table.sigma_per_s + T60_LN / FADE_S
+            levels.append(partial_tables((-fade_sigma + 2j * np.pi * table.freq_hz) / sample_rate,
+                                         split=split, max_block=max_block))
+            amp = np.zeros((128, len(table.freq_hz)), dtype=np.complex128)
+            amp[1:] = table.at_speeds(speeds)
+            octaves = np.log2(table.freq_hz / table.freq_hz[0])
+            una = 10.0 ** ((inst["una_corda_level_db"] + inst["una_corda_tilt_db_per_octave"] * octaves) / 20.0)
+            self.keys[key] = KeyData(key=key, freq_hz=table.freq_hz, damped=key <= self.last_damped_key,
+                                     levels=tuple(levels), amplitude=amp, una_corda_gain=una)
+        self.max_partials = max(len(k.freq_hz) for k in self.keys.values())
+
+    def damper_level(self, sustain_cc: int) -> int:
+        """Damper engagement level of a released key at a sustain-pedal value (0..127)."""
+        lo, hi = self.half_pedal
+        engaged = min(max((hi - sustain_cc) / (hi - lo), 0.0), 1.0)
+        return int(round(engaged * DAMPER_LEVELS))

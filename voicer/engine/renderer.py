@@ -1,0 +1,286 @@
+"""The renderer: MIDI events in, safe audio blocks out, one or two voicing states.
+
+:meth:`Renderer.process` is the body of the audio callback. It fills a float32 block of
+shape (channels, frames), applying each MIDI event at its sample inside the block: the
+block is rendered in segments between events, so the output does not depend on how the
+stream is cut into blocks (checked with blocks of 1, 64, 65, 256 and 8193 samples).
+
+Two voicing states (A and B) can be loaded at once. Both hear every event and keep their
+strings vibrating; only the audible one is rendered, the other is advanced (one complex
+multiply per partial per block). Flipping (:meth:`flip`, a chosen MIDI controller, or a
+program change) crossfades to the other over ``crossfade_s``, so a client hears the same
+chord voiced both ways.
+
+Output is the summed bridge force times the master gain, through the effect plugins and
+the :class:`~voicer.engine.safety.SafetyStage`. A voice whose state turns non-finite is
+removed and the fault counted. After construction nothing allocates arrays.
+"""
+
+from __future__ import annotations
+
+__all__ = ["Renderer", "RenderStats", "HOUSEKEEPING_FRAMES", "DEFAULT_GAIN_DB", "DEFAULT_MAX_VOICES"]
+
+from dataclasses import dataclass
+from typing import Iterable, Sequence
+
+import mido
+import numpy as np
+from numpy.typing import NDArray
+
+from ..errors import ParameterError
+from .bank import OscillatorBank
+from .host import Effect
+from .instrument import Instrument
+from .safety import DEFAULT_CEILING_DBFS, SafetyStage
+from .voices import Voices
+
+#: Culling and freeing voices happens at every multiple of this many samples (absolute
+#: positions, so that it does not depend on the block size).
+HOUSEKEEPING_FRAMES = 1024
+#: Bridge force (newtons) to full scale: a forte chord of the demo peaks near -6 dBFS.
+DEFAULT_GAIN_DB = -50.0
+DEFAULT_MAX_VOICES = 96
+#: Partials below this level re full scale are dropped.
+DEFAULT_CULL_DBFS = -100.0
+
+# MIDI controller numbers (MIDI 1.0 Detailed Specification, control change table).
+CC_SUSTAIN, CC_SOSTENUTO, CC_UNA_CORDA, CC_ALL_SOUND_OFF, CC_ALL_NOTES_OFF = 64, 66, 67, 120, 123
+
+
+@dataclass
+class RenderStats:
+    """Running figures of a renderer (see ``voicer render --stats-json``)."""
+
+    frames: int = 0
+    blocks: int = 0
+    peak_partials: int = 0
+    partial_blocks: int = 0  # sum over blocks of the partial count (for the mean)
+    peak_abs: float = 0.0
+    nonfinite: int = 0
+    flips: int = 0
+
+    @property
+    def mean_partials(self) -> float:
+        return self.partial_blocks / self.blocks if self.blocks else 0.0
+
+    @property
+    def peak_dbfs(self) -> float:
+        return float(20.0 * np.log10(self.peak_abs)) if self.peak_abs > 0 else float("-inf")
+
+
+class Renderer:
+    """Sample-accurate rendering of MIDI through one or two voicing states.
+
+    Parameters
+    ----------
+    states : sequence of Instrument
+        One state, or two for A/B (same sample rate and block size).
+    block : int
+        Largest block handed to the oscillator banks (larger calls are split).
+    max_voices : int
+        Polyphony limit per state.
+    gain_db : float
+        Master gain from bridge force (N) to full scale.
+    ceiling_dbfs : float
+        Hard ceiling of the safety stage.
+    effects : sequence of Effect
+        Plugins applied after the master gain, already prepared.
+    ab_cc : int or None
+        Controller number whose press (value >= 64 after < 64) flips A/B.
+    ab_program_change : bool
+        Whether a program change flips A/B.
+    crossfade_s : float
+        Length of the A/B crossfade.
+    cull_dbfs : float
+        Partials below this output level are dropped.
+    """
+
+    def __init__(self, states: Sequence[Instrument], *, block: int = 256, max_voices: int = DEFAULT_MAX_VOICES,
+                 gain_db: float = DEFAULT_GAIN_DB, ceiling_dbfs: float = DEFAULT_CEILING_DBFS,
+                 effects: Sequence[Effect] = (), ab_cc: int | None = None, ab_program_change: bool = True,
+                 crossfade_s: float = 0.02, cull_dbfs: float = DEFAULT_CULL_DBFS) -> None:
+        if not 1 <= len(states) <= 2:
+            raise ParameterError(f"{len(states)} voicing states given; the renderer takes 1 (A) or 2 (A and B)")
+        if block < 16:
+            raise ParameterError(f"block={block} must be >= 16")
+        rates = {s.sample_rate for s in states}
+        if len(rates) != 1:
+            raise ParameterError(f"voicing states have different sample rates {sorted(rates)}")
+        self.sample_rate = rates.pop()
+        self.states = list(states)
+        self.block = block
+        self.gain = 10.0 ** (gain_db / 20.0)
+        self.cull = 10.0 ** (cull_dbfs / 20.0) / self.gain  # in bridge-force units
+        self.effects = list(effects)
+        self.ab_cc, self.ab_program_change = ab_cc, ab_program_change
+        self.crossfade = max(1, int(round(crossfade_s * self.sample_rate)))
+        self.banks, self.voices = [], []
+        for state in states:
+            bank = OscillatorBank(2 * max_voices * state.max_partials, max_block=block)
+            self.banks.append(bank)
+            self.voices.append(Voices(state, bank, max_voices=max_voices))
+        self.safety = SafetyStage(block, ceiling_dbfs=ceiling_dbfs)
+        self.stats = RenderStats()
+        self.audible = 0
+        self._fade_left = 0  # samples of crossfade still to go (toward self.audible)
+        self._ab_pressed = False
+        self._position = 0  # absolute sample position
+        self._mono = [np.zeros(block) for _ in states]
+        self._mix = np.zeros(block)
+        self._ramp = np.zeros(block)
+        self._fx = np.zeros((1, block), dtype=np.float32)
+
+    # --- control -----------------------------------------------------------------
+
+    @property
+    def state_name(self) -> str:
+        return self.states[self.audible].name
+
+    def flip(self) -> None:
+        """Crossfade to the other voicing state (no effect with one state)."""
+        if len(self.states) < 2:
+            return
+        self.audible = 1 - self.audible
+        self._fade_left = self.crossfade - self._fade_left  # reverse a crossfade in progress
+        self.stats.flips += 1
+
+    def apply(self, message: mido.Message) -> None:
+        """Apply one normalised MIDI message to every state now."""
+        kind = message.type
+        if kind == "note_on":
+            for v in self.voices:
+                v.note_on(message.note, message.velocity)
+        elif kind == "note_off":
+            for v in self.voices:
+                v.note_off(message.note)
+        elif kind == "control_change":
+            self._control(message.control, message.value)
+        elif kind == "program_change" and self.ab_program_change:
+            self.flip()
+
+    def _control(self, control: int, value: int) -> None:
+        if control == self.ab_cc:
+            pressed = value >= 64
+            if pressed and not self._ab_pressed:
+                self.flip()
+            self._ab_pressed = pressed
+            return
+        for v in self.voices:
+            if control == CC_SUSTAIN:
+                v.set_sustain(value)
+            elif control == CC_SOSTENUTO:
+                v.set_sostenuto(value >= 64)
+            elif control == CC_UNA_CORDA:
+                v.set_una_corda(value >= 64)
+            elif control == CC_ALL_NOTES_OFF:
+                v.all_notes_off()
+            elif control == CC_ALL_SOUND_OFF:
+                v.all_sound_off()
+
+    def stop(self) -> None:
+        """Clear every key and pedal and fade all sound (end of a render, Ctrl-C)."""
+        for v in self.voices:
+            v.set_sustain(0)
+            v.set_sostenuto(False)
+            v.all_sound_off()
+
+    # --- rendering ---------------------------------------------------------------
+
+    def process(self, out: NDArray[np.float32], events: Iterable[tuple[int, mido.Message]] = ()) -> None:
+        """Fill ``out`` (channels, frames) with the next frames; apply each event at its
+        sample offset (0 <= offset < frames, in time order; later offsets are clamped)."""
+        frames = out.shape[1]
+        done = 0
+        pending = iter(events)
+        event = next(pending, None)
+        while done < frames:
+            n = min(self.block, frames - done)
+            mix = self._mix[:n]
+            mix[:] = 0.0
+            pos = 0
+            while pos < n:
+                end = n
+                while event is not None and min(event[0], frames - 1) - done < end:
+                    at = max(min(event[0], frames - 1) - done, pos)
+                    if at > pos:
+                        self._segment(pos, at)
+                        pos = at
+                    self.apply(event[1])
+                    event = next(pending, None)
+                # Split at housekeeping points so that they fall on the same samples
+                # whatever the block size.
+                to_hk = HOUSEKEEPING_FRAMES - (self._position % HOUSEKEEPING_FRAMES)
+                seg_end = min(end, pos + to_hk)
+                if seg_end > pos:
+                    self._segment(pos, seg_end)
+                    pos = seg_end
+                if self._position % HOUSEKEEPING_FRAMES == 0:
+                    for v in self.voices:
+                        v.housekeeping(self.cull)
+            self._finish(out, done, n)
+            done += n
+        while event is not None:  # offsets beyond the block: apply at its end
+            self.apply(event[1])
+            event = next(pending, None)
+
+    def _segment(self, lo: int, hi: int) -> None:
+        """Render samples lo..hi of the current block into the mix."""
+        n = hi - lo
+        fading = self._fade_left > 0
+        for s, bank in enumerate(self.banks):
+            if s == self.audible or fading:
+                buf = self._mono[s][:n]
+                buf[:] = 0.0
+                bank.render(buf, n)
+            else:
+                bank.advance(n)
+        mix = self._mix[lo:hi]
+        if fading:
+            # Linear crossfade toward the audible state, counted in samples.
+            m = min(n, self._fade_left)
+            ramp = self._ramp[:n]
+            self._fill_ramp(ramp, m, 1.0 - self._fade_left / self.crossfade)
+            ramp[m:] = 1.0
+            to, frm = self._mono[self.audible][:n], self._mono[1 - self.audible][:n]
+            np.subtract(to, frm, out=mix)
+            np.multiply(mix, ramp, out=mix)
+            np.add(mix, frm, out=mix)
+            self._fade_left -= m
+        else:
+            mix += self._mono[self.audible][:n]
+        self._position += n
+
+    def _fill_ramp(self, ramp: NDArray[np.float64], m: int, start: float) -> None:
+        step = 1.0 / self.crossfade
+        # ramp[i] = start + (i + 1) step for i < m, without allocating an arange.
+        ramp[:m] = step
+        np.cumsum(ramp[:m], out=ramp[:m])
+        ramp[:m] += start
+
+    def _finish(self, out: NDArray[np.float32], done: int, n: int) -> None:
+        mix = self._mix[:n]
+        mix *= self.gain
+        if self.effects:
+            fx = self._fx[:, :n]
+            fx[0] = mix
+            for effect in self.effects:
+                effect.process(fx)
+            mix[:] = fx[0]
+        if not self.safety.process(mix):
+            self._reset_bad_voices()
+        out[:, done:done + n] = mix
+        st = self.stats
+        st.frames += n
+        st.blocks += 1
+        count = self.banks[self.audible].count
+        st.peak_partials = max(st.peak_partials, count)
+        st.partial_blocks += count
+        st.peak_abs = max(st.peak_abs, float(mix.max()), -float(mix.min()))
+        st.nonfinite = self.safety.nonfinite
+
+    def _reset_bad_voices(self) -> None:
+        for bank, voices in zip(self.banks, self.voices):
+            k = bank.count
+            bad = ~np.isfinite(bank.state[:k])
+            for owner in set(bank.owner[:k][bad].tolist()):
+                voices.reset_voice(int(owner))

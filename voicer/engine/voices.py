@@ -1,0 +1,232 @@
+"""Voices of one voicing state: note-on/off, dampers, pedals, polyphony and stealing.
+
+A voice is one strike of one key: its partials in the oscillator bank, owned by the
+voice's id. Re-striking a sounding key adds a new voice on top of the strings still
+vibrating (superposition; nothing is cut). Every voice of a key shares the key's damper:
+
+* a held key, a key above ``last_damped_key``, or a key caught by the sostenuto pedal
+  (CC 66, keys held when it went down) rings freely;
+* otherwise the damper engagement follows the sustain pedal (CC 64), with half-pedal
+  values between ``half_pedal_low_cc`` and ``half_pedal_high_cc`` damping in part
+  (quantised to :data:`~voicer.engine.instrument.DAMPER_LEVELS` steps);
+* the una corda pedal (CC 67) changes the spectrum of the strikes made while it is down.
+
+Above the voice limit a voice is stolen, released voices first (the longest released),
+then the quietest, and faded out over a few milliseconds instead of cut. All work is
+Python bookkeeping plus copies into the bank's preallocated arrays: nothing here
+allocates arrays after construction, so it runs inside the audio callback.
+"""
+
+from __future__ import annotations
+
+__all__ = ["Voices"]
+
+import numpy as np
+
+from .bank import OscillatorBank
+from .instrument import DAMPER_LEVELS, Instrument
+
+_FADING = DAMPER_LEVELS + 1  # level index of the fade tables
+
+
+class Voices:
+    """Voice allocation and pedal state for one instrument on one bank.
+
+    Parameters
+    ----------
+    instrument : Instrument
+        The voicing state.
+    bank : OscillatorBank
+        Where the partials go; its capacity should hold ``2 * max_voices`` voices.
+    max_voices : int
+        Polyphony limit (voices not fading out).
+    """
+
+    def __init__(self, instrument: Instrument, bank: OscillatorBank, *, max_voices: int) -> None:
+        self.inst, self.bank, self.max_voices = instrument, bank, max_voices
+        ids = 2 * max_voices  # room for voices fading out
+        self.key_of = [-1] * ids
+        self.level_of = [0] * ids
+        self.fading = [False] * ids
+        self.released_at = [0] * ids
+        self.free = list(range(ids - 1, -1, -1))
+        self.by_key: list[list[int]] = [[] for _ in range(128)]
+        self.held = [False] * 128
+        self.caught = [False] * 128  # by the sostenuto pedal
+        self.sustain_cc = 0
+        self.sostenuto = False
+        self.una_corda = False
+        self.active = 0  # voices not fading
+        self.steals = 0
+        self._clock = 0
+        self._amp = np.zeros(instrument.max_partials, dtype=np.complex128)
+        self._counts = np.zeros(ids, dtype=np.int64)
+        self._loudness = np.zeros(ids, dtype=np.float64)
+        self._mag = np.zeros(bank.capacity, dtype=np.float64)
+
+    # --- events ------------------------------------------------------------------
+
+    def note_on(self, key: int, velocity: int) -> None:
+        """Strike a key (velocity 1..127); keys outside the instrument are ignored."""
+        data = self.inst.keys.get(key)
+        if data is None or velocity < 1:
+            return
+        self.held[key] = True
+        self._update_key(key)  # an already sounding key stops being damped
+        n = len(data.freq_hz)
+        while self.active >= self.max_voices:
+            self._steal()
+        while not self.free or self.bank.count + n > self.bank.capacity:
+            if not self._drop_fading() and not self._steal(hard=True):
+                return  # nothing left to make room with (cannot happen with a sane capacity)
+        amp = self._amp[:n]
+        if self.una_corda:
+            np.multiply(data.amplitude[min(velocity, 127)], data.una_corda_gain, out=amp)
+        else:
+            amp[:] = data.amplitude[min(velocity, 127)]
+        v = self.free.pop()
+        self.bank.add_tables(data.levels[0], amp, owner=v)
+        self.key_of[v], self.level_of[v], self.fading[v], self.released_at[v] = key, 0, False, 0
+        self.by_key[key].append(v)
+        self.active += 1
+
+    def note_off(self, key: int) -> None:
+        """Release a key: its damper falls unless a pedal holds it."""
+        if not 0 <= key < 128 or not self.held[key]:
+            return
+        self.held[key] = False
+        self._clock += 1
+        for v in self.by_key[key]:
+            self.released_at[v] = self._clock
+        self._update_key(key)
+
+    def set_sustain(self, cc: int) -> None:
+        """Sustain pedal position, CC 64 value 0..127 (half pedal in between)."""
+        self.sustain_cc = cc
+        self._update_all()
+
+    def set_sostenuto(self, down: bool) -> None:
+        """Sostenuto pedal (CC 66): going down catches the keys held at that moment."""
+        if down and not self.sostenuto:
+            self.caught = list(self.held)
+        elif not down:
+            self.caught = [False] * 128
+        self.sostenuto = down
+        self._update_all()
+
+    def set_una_corda(self, down: bool) -> None:
+        """Una corda pedal (CC 67): changes the strikes made while it is down."""
+        self.una_corda = down
+
+    def all_notes_off(self) -> None:
+        """Release every key (MIDI CC 123); pedals still hold what they hold."""
+        for key in range(128):
+            if self.held[key]:
+                self.note_off(key)
+
+    def all_sound_off(self) -> None:
+        """Fade every voice out now (CC 120, stop, panic)."""
+        for key in range(128):
+            for v in list(self.by_key[key]):
+                self._fade(v)
+            self.held[key] = False
+        self.caught = [False] * 128
+
+    # --- upkeep ------------------------------------------------------------------
+
+    def housekeeping(self, threshold: float) -> None:
+        """Drop inaudible partials and free voices that have none left."""
+        bank = self.bank
+        bank.cull(threshold)
+        counts = self._counts
+        counts[:] = 0
+        np.add.at(counts, bank.owner[: bank.count], 1)
+        for v, key in enumerate(self.key_of):
+            if key >= 0 and counts[v] == 0:
+                self._release_id(v)
+
+    def reset_voice(self, v: int) -> None:
+        """Remove a voice at once (its state went bad): no fade, it is already faulty."""
+        self.bank.remove_owner(v)
+        self._release_id(v)
+
+    @property
+    def voices(self) -> int:
+        """Voices sounding (fading ones included)."""
+        return len(self.key_of) - len(self.free)
+
+    # --- internals ---------------------------------------------------------------
+
+    def _level(self, key: int) -> int:
+        data = self.inst.keys[key]
+        if not data.damped or self.held[key] or (self.sostenuto and self.caught[key]):
+            return 0
+        return self.inst.damper_level(self.sustain_cc)
+
+    def _update_key(self, key: int) -> None:
+        voices = self.by_key[key]
+        if not voices:
+            return
+        level = self._level(key)
+        tables = self.inst.keys[key].levels[level]
+        for v in voices:
+            if self.level_of[v] != level:
+                self.bank.retune(v, tables)
+                self.level_of[v] = level
+
+    def _update_all(self) -> None:
+        for key in range(128):
+            self._update_key(key)
+
+    def _fade(self, v: int) -> None:
+        key = self.key_of[v]
+        if key < 0 or self.fading[v]:
+            return
+        self.bank.retune(v, self.inst.keys[key].fade)
+        self.by_key[key].remove(v)
+        self.fading[v], self.level_of[v] = True, _FADING
+        self.active -= 1
+
+    def _release_id(self, v: int) -> None:
+        key = self.key_of[v]
+        if not self.fading[v]:
+            self.by_key[key].remove(v)
+            self.active -= 1
+        self.key_of[v], self.fading[v] = -1, False
+        self.free.append(v)
+
+    def _drop_fading(self) -> bool:
+        """Remove one fading voice at once (only when the bank is full)."""
+        for v, key in enumerate(self.key_of):
+            if key >= 0 and self.fading[v]:
+                self.bank.remove_owner(v)
+                self._release_id(v)
+                return True
+        return False
+
+    def _victim(self) -> int:
+        released = [v for v, key in enumerate(self.key_of)
+                    if key >= 0 and not self.fading[v] and not self.held[key]]
+        if released:
+            return min(released, key=lambda v: self.released_at[v])
+        bank = self.bank
+        mag = self._mag[: bank.count]
+        np.abs(bank.state[: bank.count], out=mag)
+        loud = self._loudness
+        loud[:] = 0.0
+        np.add.at(loud, bank.owner[: bank.count], mag)
+        candidates = [v for v, key in enumerate(self.key_of) if key >= 0 and not self.fading[v]]
+        return min(candidates, key=lambda v: loud[v])
+
+    def _steal(self, hard: bool = False) -> bool:
+        """Fade (or with ``hard``, remove) one voice to make room; False if none."""
+        if not self.active:
+            return False
+        v = self._victim()
+        self.steals += 1
+        if hard:
+            self.bank.remove_owner(v)
+            self._release_id(v)
+        else:
+            self._fade(v)
+        return True
