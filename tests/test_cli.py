@@ -50,9 +50,18 @@ def test_scale_table_lists_the_compass(capsys, demo_path) -> None:
     assert " 69 A4      440.00" in out
 
 
-def test_demo_prints_the_demo_instrument(capsys) -> None:
-    code, out, _ = run(capsys, "demo")
-    assert code == 0 and "KH-190 salon grand" in out and " 108 C8" in out
+def test_demo_renders_both_states(capsys, tmp_path) -> None:
+    import soundfile as sf
+
+    code, out, _ = run(capsys, "demo", "--out-dir", str(tmp_path), "--no-play")
+    assert code == 0 and "KH-190 salon grand" in out
+    for state in "AB":
+        path = tmp_path / f"demo-{state}.wav"
+        assert f"wrote {path}" in out
+        data, rate = sf.read(path)
+        assert rate == 48_000 and 30 < len(data) / rate < 40 and 0.1 < abs(data).max() < 10 ** (-1 / 20)
+    a, b = sf.read(tmp_path / "demo-A.wav")[0], sf.read(tmp_path / "demo-B.wav")[0]
+    assert a.shape == b.shape and not np.allclose(a, b)  # the voicing is heard
 
 
 def test_bad_preset_exits_2_with_one_line(capsys, tmp_path) -> None:
@@ -76,7 +85,7 @@ def test_usage_errors_exit_2(argv, capsys) -> None:
     assert info.value.code == 2
 
 
-@pytest.mark.parametrize("command", ["demo", "scale", "inspect"])
+@pytest.mark.parametrize("command", ["demo", "scale", "inspect", "render", "play", "devices", "plugins"])
 def test_help_has_an_example(command, capsys) -> None:
     with pytest.raises(SystemExit) as info:
         main([command, "--help"])

@@ -18,7 +18,10 @@ from typing import Callable, Sequence
 from . import __version__
 from .errors import VoicerError
 from .report.scale_table import JSON_PARTIALS, format_scale_table, scale_report
-from .resources import DEMO_PIANO, find_preset
+from .resources import find_preset
+from .cli_audio import cmd_demo, cmd_devices, cmd_play, cmd_plugins, cmd_render
+from .engine.renderer import DEFAULT_GAIN_DB
+from .engine.session import DEFAULT_SAMPLE_RATE
 from .report.inspect import DEFAULT_PARTIALS, format_inspect, inspect_key
 from .tone.params import KEY_PARAM_BY_NAME
 from .tone.preset import Preset, load_preset
@@ -34,15 +37,6 @@ def _cmd_scale(args: argparse.Namespace) -> int:
         sys.stdout.write("\n")
     else:
         print(format_scale_table(report))
-    return 0
-
-
-def _cmd_demo(args: argparse.Namespace) -> int:
-    path = find_preset(DEMO_PIANO)
-    preset = load_preset(path)
-    print(f"voicer demo: the bundled instrument {DEMO_PIANO} ({path})\n")
-    print(format_scale_table(scale_report(preset)))
-    print("\nNext: hear what one blow does, e.g.  voicer inspect demo --key 60 --velocity 64")
     return 0
 
 
@@ -96,6 +90,29 @@ def _ranged_int(lo: int, hi: int, what: str) -> Callable[[str], int]:
     return parse
 
 
+def _latency(text: str) -> str | float:
+    if text in ("high", "low"):
+        return text
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not 'high', 'low' or a number of seconds") from None
+    if not value > 0:
+        raise argparse.ArgumentTypeError(f"latency {value} must be > 0 seconds")
+    return value
+
+
+def _audio_options(parser: argparse.ArgumentParser, *, block: bool = True) -> None:
+    parser.add_argument("--sample-rate", type=_ranged_int(8000, 192000, "sample rate"), default=DEFAULT_SAMPLE_RATE,
+                        metavar="HZ", help=f"sample rate (default {DEFAULT_SAMPLE_RATE})")
+    if block:
+        parser.add_argument("--block", type=_ranged_int(16, 8192, "block"), default=256, metavar="N",
+                            help="samples per block (default 256)")
+        parser.add_argument("--model", default="physical", help="model plugin (default physical)")
+    parser.add_argument("--gain-db", type=float, default=DEFAULT_GAIN_DB, metavar="DB",
+                        help=f"master gain from bridge force to full scale (default {DEFAULT_GAIN_DB:g})")
+
+
 def _positive_int(text: str) -> int:
     try:
         value = int(text)
@@ -111,7 +128,8 @@ def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="voicer",
         description="Hear a piano voicing job before doing it.",
-        epilog="examples:\n  voicer demo\n  voicer scale demo --json\n  voicer inspect demo --key 40 --velocity 90",
+        epilog="examples:\n  voicer demo\n  voicer scale demo --json\n  voicer inspect demo --key 40 --velocity 90\n"
+               "  voicer render demo song.mid -o song.wav\n  voicer play demo --voicing plan.toml",
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     parser.add_argument("--version", action="version", version=f"voicer {__version__}")
@@ -119,10 +137,64 @@ def build_parser() -> argparse.ArgumentParser:
     sub.required = True
 
     demo = sub.add_parser(
-        "demo", help="show the bundled demo instrument", formatter_class=argparse.RawDescriptionHelpFormatter,
-        description="Show what voicer predicts for the bundled demo instrument (no audio device needed).",
-        epilog="example:\n  voicer demo")
-    demo.set_defaults(func=_cmd_demo)
+        "demo", help="render the demo passage on the demo instrument, as it is (A) and voiced (B)",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        description="Render the bundled demo passage on the bundled demo instrument in two voicing states\n"
+                    "to WAV files (no audio device needed), and play them when an audio device exists.",
+        epilog="examples:\n  voicer demo\n  voicer demo --out-dir /tmp/demo --no-play")
+    demo.add_argument("--out-dir", default="voicer-demo", metavar="DIR", help="where the WAV files go (default voicer-demo)")
+    demo.add_argument("--no-play", action="store_true", help="only write the files")
+    _audio_options(demo, block=False)
+    demo.set_defaults(func=cmd_demo)
+
+    render = sub.add_parser(
+        "render", help="render a MIDI file to WAV/FLAC", formatter_class=argparse.RawDescriptionHelpFormatter,
+        description="Render a MIDI file through the predicted piano (with a voicing plan: the voiced piano).",
+        epilog="examples:\n  voicer render demo song.mid -o song.wav\n"
+               "  voicer render demo song.mid -o song-B.flac --voicing presets/voicings/kestrel-190-mellow.toml"
+               " --stats-json stats.json")
+    render.add_argument("preset", metavar="PRESET", help="preset file, a bundled name, or 'demo'")
+    render.add_argument("midi", metavar="SONG.mid", help="standard MIDI file")
+    render.add_argument("-o", "--output", required=True, metavar="OUT.wav", help="output file (.wav or .flac)")
+    render.add_argument("--voicing", metavar="PLAN.toml", help="voicing plan to apply before rendering")
+    render.add_argument("--tail", type=float, default=3.0, metavar="S", help="seconds of ringing after the last event")
+    render.add_argument("--subtype", metavar="NAME", help="sample format, e.g. PCM_16, PCM_24 (default), FLOAT")
+    render.add_argument("--stats-json", metavar="FILE", help="write the render's figures as JSON (see the README)")
+    _audio_options(render)
+    render.set_defaults(func=cmd_render)
+
+    play = sub.add_parser(
+        "play", help="play live from MIDI (or the computer keyboard) with A/B switching",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        description="Play the predicted piano live. With --voicing, state A is the preset and state B the\n"
+                    "voiced preset; flip between them with the space bar, --ab-cc or a program change.",
+        epilog="examples:\n  voicer play demo\n"
+               "  voicer play demo --voicing presets/voicings/kestrel-190-mellow.toml --midi-in 1 --ab-cc 80\n"
+               "  voicer play demo --midi-file presets/midi/demo-passage.mid --device pulse --block 128")
+    play.add_argument("preset", metavar="PRESET", help="preset file, a bundled name, or 'demo'")
+    play.add_argument("--voicing", metavar="PLAN.toml", help="voicing plan for state B")
+    play.add_argument("--midi-in", metavar="PORT", help="MIDI input by name, part of a name, or number")
+    play.add_argument("--midi-file", metavar="SONG.mid", help="play a MIDI file in real time instead of a port")
+    play.add_argument("--device", metavar="NAME", help="audio output by name, part of a name, or number")
+    play.add_argument("--latency", type=_latency, default="high", help="'high', 'low' or seconds (default high)")
+    play.add_argument("--ab-cc", type=_ranged_int(0, 127, "controller"), metavar="N",
+                      help="MIDI controller whose press flips A/B")
+    play.add_argument("--seconds", type=float, metavar="S", help="stop after S seconds")
+    _audio_options(play)
+    play.set_defaults(func=cmd_play)
+
+    devices = sub.add_parser("devices", help="list audio outputs and MIDI inputs",
+                             formatter_class=argparse.RawDescriptionHelpFormatter,
+                             description="List the audio output devices and MIDI input ports voicer can use.",
+                             epilog="example:\n  voicer devices")
+    devices.set_defaults(func=cmd_devices)
+
+    plugins = sub.add_parser("plugins", help="list the plugins found (models, effects, sinks, sources)",
+                             formatter_class=argparse.RawDescriptionHelpFormatter,
+                             description="List every plugin registered under voicer's entry-point groups;\n"
+                                         "a broken plugin is shown with its reason.",
+                             epilog="example:\n  voicer plugins")
+    plugins.set_defaults(func=cmd_plugins)
 
     scale = sub.add_parser(
         "scale", help="per-key table of a preset: f0, length, tension, B, unison, partials",

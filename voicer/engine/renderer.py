@@ -144,8 +144,12 @@ class Renderer:
         self._fade_left = self.crossfade - self._fade_left  # reverse a crossfade in progress
         self.stats.flips += 1
 
-    def apply(self, message: mido.Message) -> None:
-        """Apply one normalised MIDI message to every state now."""
+    def apply(self, message: mido.Message | str) -> None:
+        """Apply one normalised MIDI message, or the command ``"flip"``, to every state now."""
+        if isinstance(message, str):
+            if message == "flip":
+                self.flip()
+            return
         kind = message.type
         if kind == "note_on":
             for v in self.voices:
@@ -186,7 +190,7 @@ class Renderer:
 
     # --- rendering ---------------------------------------------------------------
 
-    def process(self, out: NDArray[np.float32], events: Iterable[tuple[int, mido.Message]] = ()) -> None:
+    def process(self, out: NDArray[np.float32], events: Iterable[tuple[int, mido.Message | str]] = ()) -> None:
         """Fill ``out`` (channels, frames) with the next frames; apply each event at its
         sample offset (0 <= offset < frames, in time order; later offsets are clamped)."""
         frames = out.shape[1]

@@ -1,0 +1,236 @@
+"""The sound commands of the command line: render, play, demo, devices, plugins."""
+
+from __future__ import annotations
+
+__all__ = ["cmd_render", "cmd_play", "cmd_demo", "cmd_devices", "cmd_plugins", "render_file"]
+
+import argparse
+import contextlib
+import json
+import sys
+import threading
+import time
+from pathlib import Path
+
+from .engine.host import discover, format_plugins
+from .engine.keyboard import HELP, KeyboardPlayer, raw_terminal
+from .engine.live import LiveInput
+from .engine.offline import RenderResult, render_events
+from .engine.renderer import Renderer
+from .engine.session import prepare_states
+from .errors import VoicerError
+from .io.atomic import atomic_write_bytes
+from .io.sinks import FileSink, PortAudioSink, format_devices, list_output_devices
+from .io.sources import MidiFileSource, MidiPortSource, format_ports
+from .resources import DEMO_PIANO, find_preset, presets_dir
+from .tone.preset import Preset, load_preset
+
+CHANNELS = 2
+DEMO_MIDI = "demo-passage.mid"
+DEMO_VOICING = "kestrel-190-mellow.toml"
+
+
+def _tty() -> bool:
+    return sys.stderr.isatty()
+
+
+def render_file(preset: Preset, midi: str | Path, out: str | Path, *, voicing: str | Path | None, sample_rate: int,
+                block: int, gain_db: float, tail_s: float, subtype: str | None, model: str = "physical",
+                state: str = "B") -> RenderResult:
+    """Render a MIDI file through one voicing state (A: the preset, B: with the plan) to a file."""
+    source = MidiFileSource(midi)
+    states = prepare_states(preset, voicing if state == "B" else None, sample_rate=sample_rate, block=block,
+                            model=model, both=False, progress=_tty())
+    renderer = Renderer(states, block=block, gain_db=gain_db)
+    with FileSink(out, subtype=subtype) as sink:
+        sink.open(sample_rate=sample_rate, channels=CHANNELS, block=block)
+        result = render_events(renderer, source.events(), sink, tail_s=tail_s, channels=CHANNELS, progress=_tty())
+    return result
+
+
+def _stats_json(result: RenderResult, *, sample_rate: int, block: int, state: str) -> dict[str, object]:
+    st = result.stats
+    return {
+        "sample_rate": sample_rate,
+        "block": block,
+        "frames": result.frames,
+        "duration_s": result.frames / sample_rate,
+        "state": state,
+        "peak_partials": st.peak_partials,
+        "mean_partials": st.mean_partials,
+        "peak_dbfs": st.peak_dbfs,
+        "nonfinite": st.nonfinite,
+        "late_blocks": 0,  # offline: nothing can be late
+        "render_s": result.render_s,
+    }
+
+
+def _summary(path: str | Path, result: RenderResult, sample_rate: int) -> str:
+    st, seconds = result.stats, result.frames / sample_rate
+    speed = seconds / result.render_s if result.render_s > 0 else float("inf")
+    return (f"wrote {path}: {seconds:.1f} s, peak {st.peak_dbfs:.1f} dBFS, {st.mean_partials:.0f} partials on "
+            f"average (peak {st.peak_partials}), rendered in {result.render_s:.2f} s ({speed:.0f}x real time)"
+            + (f", {st.nonfinite} non-finite samples zeroed" if st.nonfinite else ""))
+
+
+def cmd_render(args: argparse.Namespace) -> int:
+    preset = load_preset(find_preset(args.preset))
+    state = "B" if args.voicing else "A"
+    result = render_file(preset, args.midi, args.output, voicing=args.voicing, sample_rate=args.sample_rate,
+                         block=args.block, gain_db=args.gain_db, tail_s=args.tail, subtype=args.subtype,
+                         model=args.model, state=state)
+    print(_summary(args.output, result, args.sample_rate))
+    if args.stats_json:
+        data = _stats_json(result, sample_rate=args.sample_rate, block=args.block, state=state)
+        atomic_write_bytes(args.stats_json, (json.dumps(data, indent=1) + "\n").encode(), backup=False)
+    return 0
+
+
+def _feed_file(path: str | Path, live: LiveInput, stop: threading.Event) -> None:
+    """Send a MIDI file's events in real time (a thread)."""
+    start = time.perf_counter()
+    for t, message in MidiFileSource(path).events():
+        while not stop.is_set() and time.perf_counter() - start < t:
+            stop.wait(min(0.005, max(t - (time.perf_counter() - start), 0.0)))
+        if stop.is_set():
+            return
+        live.push(message)
+
+
+def cmd_play(args: argparse.Namespace) -> int:
+    preset = load_preset(find_preset(args.preset))
+    states = prepare_states(preset, args.voicing, sample_rate=args.sample_rate, block=args.block, model=args.model,
+                            progress=_tty())
+    renderer = Renderer(states, block=args.block, gain_db=args.gain_db, ab_cc=args.ab_cc)
+    live = LiveInput(args.sample_rate)
+    stop = threading.Event()
+    source: MidiPortSource | None = None
+    keyboard: KeyboardPlayer | None = None
+    feeder: threading.Thread | None = None
+    if args.midi_file:
+        MidiFileSource(args.midi_file)  # fail early on a bad file
+        feeder = threading.Thread(target=_feed_file, args=(args.midi_file, live, stop), daemon=True)
+    elif args.midi_in is not None or not sys.stdin.isatty():
+        source = MidiPortSource(args.midi_in)
+    sink = PortAudioSink(args.device, latency=args.latency)
+    sink.open(sample_rate=args.sample_rate, channels=CHANNELS, block=args.block,
+              callback=lambda out: renderer.process(out, live.drain(out.shape[1])))
+    try:
+        if source is not None:
+            source.open(live.push)
+            print(f"MIDI input: {source.port_name}", file=sys.stderr)
+        elif feeder is not None:
+            feeder.start()
+        else:
+            keyboard = KeyboardPlayer(live.push)
+            print(HELP, file=sys.stderr)
+        ab = " / ".join(s.name for s in states)
+        print(f"playing {preset.instrument['name'] or args.preset}, states {ab}; Ctrl-C to stop", file=sys.stderr)
+        _run_live(renderer, sink, live, keyboard, stop, seconds=args.seconds)
+    except KeyboardInterrupt:
+        pass
+    finally:
+        stop.set()
+        renderer.stop()
+        time.sleep(0.1)  # let the fade reach the speakers
+        sink.close()
+        if source is not None:
+            source.close()
+        print(file=sys.stderr)
+    problems = [f"{n} {what}" for n, what in ((sink.late_blocks, "late blocks"), (sink.faults, "callback faults"),
+                                              (renderer.stats.nonfinite, "non-finite samples")) if n]
+    print(f"stopped: {renderer.stats.frames / args.sample_rate:.1f} s played"
+          + (f"; {', '.join(problems)}" if problems else ""), file=sys.stderr)
+    return 0
+
+
+def _status(renderer: Renderer, sink: PortAudioSink) -> str:
+    v = renderer.voices[renderer.audible]
+    return (f"\rstate {renderer.state_name}  voices {v.voices:3d}  partials {renderer.banks[renderer.audible].count:6d}"
+            f"  load {100 * sink.load:5.1f} %  late {sink.late_blocks}   ")
+
+
+def _run_live(renderer: Renderer, sink: PortAudioSink, live: LiveInput, keyboard: KeyboardPlayer | None,
+              stop: threading.Event, *, seconds: float | None) -> None:
+    deadline = None if seconds is None else time.perf_counter() + seconds
+    with contextlib.ExitStack() as stack:
+        if keyboard is not None:
+            read_char = stack.enter_context(raw_terminal())
+            threading.Thread(target=keyboard.run, args=(read_char,), daemon=True).start()
+        while not stop.is_set():
+            if keyboard is not None and keyboard.quit.is_set():
+                break
+            if deadline is not None and time.perf_counter() >= deadline:
+                break
+            sys.stderr.write(_status(renderer, sink))
+            sys.stderr.flush()
+            stop.wait(0.25)
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    preset_path = find_preset(DEMO_PIANO)
+    preset = load_preset(preset_path)
+    midi = presets_dir() / "midi" / DEMO_MIDI
+    voicing = presets_dir() / "voicings" / DEMO_VOICING
+    out_dir = Path(args.out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    print(f"voicer demo: {preset.instrument['name']} ({preset_path.name}), passage {midi.name}")
+    print(f"  state A: the instrument as it is; state B: voicing plan {voicing.name} (a preview, not a promise)")
+    files = []
+    for state in ("A", "B"):
+        path = out_dir / f"demo-{state}.wav"
+        result = render_file(preset, midi, path, voicing=voicing, sample_rate=args.sample_rate, block=256,
+                             gain_db=args.gain_db, tail_s=3.0, subtype=None, state=state)
+        print("  " + _summary(path, result, args.sample_rate))
+        files.append(path)
+    print(f"files: {', '.join(str(p.resolve()) for p in files)}")
+    if not args.no_play:
+        _play_files(files, args.sample_rate)
+    return 0
+
+
+def _play_files(files: list[Path], sample_rate: int) -> None:
+    """Play rendered files through the default device, if there is one."""
+    import soundfile as sf
+
+    for path in files:
+        data, rate = sf.read(path, dtype="float32", always_2d=True)
+        pos = [0]
+
+        def fill(out, data=data, pos=pos):
+            n = out.shape[1]
+            chunk = data[pos[0]:pos[0] + n].T
+            out[:, : chunk.shape[1]] = chunk
+            out[:, chunk.shape[1]:] = 0.0
+            pos[0] += n
+
+        sink = PortAudioSink()
+        try:
+            sink.open(sample_rate=rate, channels=data.shape[1], block=512, callback=fill)
+        except VoicerError as exc:
+            print(f"not playing: {exc}")
+            return
+        print(f"playing {path.name} ({len(data) / rate:.0f} s; Ctrl-C to skip)")
+        try:
+            while pos[0] < len(data):
+                time.sleep(0.1)
+        except KeyboardInterrupt:
+            pass
+        finally:
+            sink.close()
+
+
+def cmd_devices(args: argparse.Namespace) -> int:
+    print("audio outputs:")
+    try:
+        print(format_devices(list_output_devices()))
+    except VoicerError as exc:
+        print(f"  none: {exc}")
+    print("MIDI inputs:")
+    print(format_ports())
+    return 0
+
+
+def cmd_plugins(args: argparse.Namespace) -> int:
+    print(format_plugins(discover()))
+    return 0

@@ -1,0 +1,18 @@
+"""Built-in model plugin: the physical model (contact simulation -> modal tables)."""
+
+from __future__ import annotations
+
+__all__ = ["PhysicalModel"]
+
+from ..tone.preset import Preset
+from ..tone.tables import ModalTables, TableSettings, build_tables
+
+
+class PhysicalModel:
+    """``voicer.models`` entry ``physical``: hammer-felt contact on stiff modal strings."""
+
+    name = "physical"
+
+    def build(self, preset: Preset, *, settings: TableSettings, progress: bool = False) -> ModalTables:
+        """Tables for every key, from the cache where the inputs are unchanged."""
+        return build_tables(preset, settings=settings, progress=progress)

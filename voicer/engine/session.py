@@ -1,0 +1,33 @@
+"""Loading the voicing states that a command plays or renders."""
+
+from __future__ import annotations
+
+__all__ = ["prepare_states", "DEFAULT_SAMPLE_RATE", "SPLIT"]
+
+from pathlib import Path
+
+from ..tone.preset import Preset
+from ..tone.tables import TableSettings
+from ..tone.voicing import apply_voicing, load_voicing
+from .bank import DEFAULT_SPLIT
+from .host import load_plugin
+from .instrument import Instrument
+
+DEFAULT_SAMPLE_RATE = 48_000
+SPLIT = DEFAULT_SPLIT
+
+
+def prepare_states(preset: Preset, voicing: str | Path | None, *, sample_rate: int, block: int,
+                   model: str = "physical", both: bool = True, progress: bool = False) -> list[Instrument]:
+    """State A (the preset) and, with a voicing plan, state B (the plan applied).
+
+    With ``both=False`` and a plan, only the voiced state is returned (renders).
+    """
+    builder = load_plugin("models", model)()
+    settings = TableSettings(sample_rate_hz=float(sample_rate))
+    presets: list[tuple[str, Preset]] = [("A", preset)]
+    if voicing is not None:
+        voiced = apply_voicing(preset, load_voicing(voicing))
+        presets = [("A", preset), ("B", voiced)] if both else [("B", voiced)]
+    return [Instrument(builder.build(p, settings=settings, progress=progress), sample_rate=sample_rate,
+                       max_block=block, split=SPLIT, name=name) for name, p in presets]
