@@ -10,6 +10,7 @@ __all__ = ["main", "build_parser"]
 
 import argparse
 import json
+import math
 import os
 import sys
 import tomllib
@@ -90,6 +91,19 @@ def _ranged_int(lo: int, hi: int, what: str) -> Callable[[str], int]:
     return parse
 
 
+def _seconds(*, zero_ok: bool) -> Callable[[str], float]:
+    def parse(text: str) -> float:
+        try:
+            value = float(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{text!r} is not a number of seconds") from None
+        if not math.isfinite(value) or value < 0 or (value == 0 and not zero_ok):
+            raise argparse.ArgumentTypeError(f"{text} must be a finite number of seconds {'>=' if zero_ok else '>'} 0")
+        return value
+
+    return parse
+
+
 def _latency(text: str) -> str | float:
     if text in ("high", "low"):
         return text
@@ -97,7 +111,7 @@ def _latency(text: str) -> str | float:
         value = float(text)
     except ValueError:
         raise argparse.ArgumentTypeError(f"{text!r} is not 'high', 'low' or a number of seconds") from None
-    if not value > 0:
+    if not (math.isfinite(value) and value > 0):
         raise argparse.ArgumentTypeError(f"latency {value} must be > 0 seconds")
     return value
 
@@ -157,7 +171,8 @@ def build_parser() -> argparse.ArgumentParser:
     render.add_argument("midi", metavar="SONG.mid", help="standard MIDI file")
     render.add_argument("-o", "--output", required=True, metavar="OUT.wav", help="output file (.wav or .flac)")
     render.add_argument("--voicing", metavar="PLAN.toml", help="voicing plan to apply before rendering")
-    render.add_argument("--tail", type=float, default=3.0, metavar="S", help="seconds of ringing after the last event")
+    render.add_argument("--tail", type=_seconds(zero_ok=True), default=3.0, metavar="S",
+                        help="seconds of ringing after the last event (default 3)")
     render.add_argument("--subtype", metavar="NAME", help="sample format, e.g. PCM_16, PCM_24 (default), FLOAT")
     render.add_argument("--stats-json", metavar="FILE", help="write the render's figures as JSON (see the README)")
     _audio_options(render)
@@ -179,7 +194,7 @@ def build_parser() -> argparse.ArgumentParser:
     play.add_argument("--latency", type=_latency, default="high", help="'high', 'low' or seconds (default high)")
     play.add_argument("--ab-cc", type=_ranged_int(0, 127, "controller"), metavar="N",
                       help="MIDI controller whose press flips A/B")
-    play.add_argument("--seconds", type=float, metavar="S", help="stop after S seconds")
+    play.add_argument("--seconds", type=_seconds(zero_ok=False), metavar="S", help="stop after S seconds")
     _audio_options(play)
     play.set_defaults(func=cmd_play)
 

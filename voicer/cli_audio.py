@@ -7,6 +7,7 @@ __all__ = ["cmd_render", "cmd_play", "cmd_demo", "cmd_devices", "cmd_plugins", "
 import argparse
 import contextlib
 import json
+import math
 import sys
 import threading
 import time
@@ -58,7 +59,7 @@ def _stats_json(result: RenderResult, *, sample_rate: int, block: int, state: st
         "state": state,
         "peak_partials": st.peak_partials,
         "mean_partials": st.mean_partials,
-        "peak_dbfs": st.peak_dbfs,
+        "peak_dbfs": st.peak_dbfs if math.isfinite(st.peak_dbfs) else None,  # null: silence
         "nonfinite": st.nonfinite,
         "late_blocks": 0,  # offline: nothing can be late
         "render_s": result.render_s,
@@ -115,6 +116,7 @@ def cmd_play(args: argparse.Namespace) -> int:
     sink = PortAudioSink(args.device, latency=args.latency)
     sink.open(sample_rate=args.sample_rate, channels=CHANNELS, block=args.block,
               callback=lambda out: renderer.process(out, live.drain(out.shape[1])))
+    started = False
     try:
         if source is not None:
             source.open(live.push)
@@ -126,6 +128,7 @@ def cmd_play(args: argparse.Namespace) -> int:
             print(HELP, file=sys.stderr)
         ab = " / ".join(s.name for s in states)
         print(f"playing {preset.instrument['name'] or args.preset}, states {ab}; Ctrl-C to stop", file=sys.stderr)
+        started = True
         _run_live(renderer, sink, live, keyboard, stop, seconds=args.seconds)
     except KeyboardInterrupt:
         pass
@@ -136,7 +139,8 @@ def cmd_play(args: argparse.Namespace) -> int:
         sink.close()
         if source is not None:
             source.close()
-        print(file=sys.stderr)
+        if started:
+            print(file=sys.stderr)  # end the status line
     problems = [f"{n} {what}" for n, what in ((sink.late_blocks, "late blocks"), (sink.faults, "callback faults"),
                                               (renderer.stats.nonfinite, "non-finite samples")) if n]
     print(f"stopped: {renderer.stats.frames / args.sample_rate:.1f} s played"

@@ -11,7 +11,8 @@ i.e. the (J x K) matrix ``[c_k p_k^(I j)]`` times the (K x I) table ``[p_k^i]`` 
 partial, written in real arithmetic as one ``(J, 2K) @ (2K, I)`` product (interleaved
 real and imaginary parts, the imaginary part of the table negated). The tables depend on
 the partial only and are computed when it is added. The master state ``c_k`` is
-complex128 and advanced once per block by ``p_k^frames``, so float32 rounding never
+complex128 and advanced once per block by ``p_k^frames`` (a product of stored powers
+``p_k^(2^b)``, so a segment of any length costs a few multiplies), so float32 rounding never
 accumulates: it is confined to one block (drift bounds in ``tests/test_bank.py``). Long
 float32 sums lose accuracy, so partials are summed in chunks and the chunks in float64.
 
@@ -36,6 +37,7 @@ from ..errors import ParameterError
 DEFAULT_SPLIT = 16
 #: Partials summed in one float32 product before the sum goes to float64.
 DEFAULT_CHUNK = 4096
+_MOVE_CHUNK = 8192  # slots moved per step when compacting (bounds the scratch memory)
 
 
 @dataclass(frozen=True, eq=False)
@@ -49,7 +51,7 @@ class PartialTables:
     lam: NDArray[np.complex128]  # (n,) log of the per-sample factor
     table: NDArray[np.float32]  # (n, 2, split) [Re p^i, -Im p^i]
     steps: NDArray[np.complex64]  # (rows, n) p^(I j)
-    advance: NDArray[np.complex128]  # (n,) p^max_block
+    powers: NDArray[np.complex128]  # (bits, n) p^(2^b), b = 0..bits-1
 
 
 def partial_tables(lam: NDArray[np.complex128], *, split: int, max_block: int) -> PartialTables:
@@ -61,7 +63,31 @@ def partial_tables(lam: NDArray[np.complex128], *, split: int, max_block: int) -
     table[:, 0] = tab.real
     table[:, 1] = -tab.imag
     steps = np.exp(np.outer(np.arange(rows) * split, lam)).astype(np.complex64)
-    return PartialTables(lam=lam.copy(), table=table, steps=steps, advance=np.exp(lam * max_block))
+    powers = np.exp(np.outer(2.0 ** np.arange(_bits(max_block)), lam))
+    return PartialTables(lam=lam.copy(), table=table, steps=steps, powers=powers)
+
+
+def _bits(max_block: int) -> int:
+    """Binary digits needed for every segment length 1..max_block."""
+    return max(int(max_block).bit_length(), 1)
+
+
+def _gather_scatter(src: NDArray, src_idx: NDArray[np.int64], dst: NDArray, dst_idx: NDArray[np.int64],
+                    buf: NDArray, axis: int) -> None:
+    """``dst[dst_idx] = src[src_idx]`` along ``axis`` through ``buf``, without temporaries.
+
+    ``mode="clip"`` keeps ``np.take`` from buffering its output (the indices are valid);
+    along axis 1 each row goes separately, since a strided 2-D ``out`` would be buffered.
+    """
+    n = len(src_idx)
+    if axis == 0:
+        np.take(src, src_idx, axis=0, out=buf[:n], mode="clip")
+        dst[dst_idx] = buf[:n]
+    else:
+        for j in range(src.shape[0]):
+            row = buf[j, :n]
+            np.take(src[j], src_idx, out=row, mode="clip")
+            dst[j, dst_idx] = row
 
 
 class OscillatorBank:
@@ -93,7 +119,8 @@ class OscillatorBank:
         self.index = np.zeros(capacity, dtype=np.int64)  # the owner's number for it (partial n)
         self._table = np.zeros((capacity, 2, split), dtype=np.float32)  # [Re p^i, -Im p^i]
         self._steps = np.zeros((rows, capacity), dtype=np.complex64)  # p^(I j), slots along the rows
-        self._advance = np.zeros(capacity, dtype=np.complex128)  # p^max_block
+        self._bits = _bits(max_block)
+        self._powers = np.zeros((self._bits, capacity), dtype=np.complex128)  # p^(2^b)
         # Scratch, sized once.
         self._c32 = np.zeros(capacity, dtype=np.complex64)
         self._rows = np.zeros(rows * chunk, dtype=np.complex64)  # viewed as a contiguous (rows, k)
@@ -110,9 +137,12 @@ class OscillatorBank:
         self._slots = np.arange(capacity)
         self._holes = np.zeros(capacity, dtype=np.int64)
         self._movers = np.zeros(capacity, dtype=np.int64)
-        self._moved = [(arr, np.zeros_like(arr), 0) for arr in
-                       (self.state, self.lam, self.owner, self.index, self._table, self._advance)]
-        self._moved.append((self._steps, np.zeros_like(self._steps), 1))
+        # Scratch for moving slots, a bounded number at a time (see _compact).
+        self._move_max = min(capacity, _MOVE_CHUNK)
+        self._moved = [(arr, np.zeros((self._move_max, *arr.shape[1:]), dtype=arr.dtype), 0) for arr in
+                       (self.state, self.lam, self.owner, self.index, self._table)]
+        for arr in (self._steps, self._powers):
+            self._moved.append((arr, np.zeros((arr.shape[0], self._move_max), dtype=arr.dtype), 1))
 
     # --- adding and changing partials ------------------------------------------------
 
@@ -129,8 +159,9 @@ class OscillatorBank:
         np.exp(rows, out=rows)
         self._steps[:, lo:hi] = rows.T
         adv = self._scratch[: hi - lo]
-        np.multiply(self.lam[lo:hi], float(self.max_block), out=adv)
-        np.exp(adv, out=self._advance[lo:hi])
+        for b in range(self._bits):
+            np.multiply(self.lam[lo:hi], float(1 << b), out=adv)
+            np.exp(adv, out=self._powers[b, lo:hi])
 
     def add(self, lam: NDArray[np.complex128], amplitude: NDArray[np.complex128], owner: int,
             index: NDArray[np.int64] | None = None) -> int:
@@ -178,7 +209,7 @@ class OscillatorBank:
         self.index[lo:hi] = self._slots[:n]
         self._table[lo:hi] = tables.table
         self._steps[:, lo:hi] = tables.steps
-        self._advance[lo:hi] = tables.advance
+        self._powers[:, lo:hi] = tables.powers
         self.count = hi
         return lo
 
@@ -193,16 +224,13 @@ class OscillatorBank:
             return 0
         slots = np.compress(mask, self._slots[:k], out=self._holes[:h])
         rows = np.compress(mask, self.index[:k], out=self._movers[:h])
-        for src, dst, buf, axis in ((tables.lam, self.lam, self._moved[1][1], 0),
-                                    (tables.table, self._table, self._moved[4][1], 0),
-                                    (tables.advance, self._advance, self._moved[5][1], 0),
-                                    (tables.steps, self._steps, self._moved[6][1], 1)):
-            if axis == 0:
-                np.take(src, rows, axis=0, out=buf[:h])
-                dst[slots] = buf[:h]
-            else:
-                np.take(src, rows, axis=1, out=buf[:, :h])
-                dst[:, slots] = buf[:, :h]
+        for lo in range(0, h, self._move_max):
+            hi = min(lo + self._move_max, h)
+            n = hi - lo
+            for src, dst, (_, buf, axis) in zip((tables.lam, tables.table, tables.steps, tables.powers),
+                                                (self.lam, self._table, self._steps, self._powers),
+                                                (self._moved[1], self._moved[4], self._moved[5], self._moved[6])):
+                _gather_scatter(src, rows[lo:hi], dst, slots[lo:hi], buf, axis)
         return h
 
     def set_lambda(self, slots: slice, lam: NDArray[np.complex128]) -> None:
@@ -243,17 +271,14 @@ class OscillatorBank:
         self.advance(frames)
 
     def advance(self, frames: int) -> None:
-        """Move every partial ``frames`` samples on without rendering."""
+        """Move every partial ``frames`` (1..max_block) samples on without rendering."""
         k = self.count
         if not k:
             return
-        if frames == self.max_block:
-            self.state[:k] *= self._advance[:k]
-        else:
-            step = self._scratch[:k]
-            np.multiply(self.lam[:k], float(frames), out=step)
-            np.exp(step, out=step)
-            self.state[:k] *= step
+        state = self.state[:k]
+        for b in range(self._bits):
+            if frames >> b & 1:
+                state *= self._powers[b, :k]
 
     # --- removing partials -------------------------------------------------------
 
@@ -285,17 +310,17 @@ class OscillatorBank:
             h = int(np.count_nonzero(movers_mask))  # as many survivors above as holes below
             holes = np.compress(holes_mask, self._slots[:n_keep], out=self._holes[:h])
             movers = np.compress(movers_mask, self._slots[n_keep:k], out=self._movers[:h])
-            for arr, buf, axis in self._moved:
-                if axis == 0:
-                    np.take(arr, movers, axis=0, out=buf[:h])
-                    arr[holes] = buf[:h]
-                else:
-                    np.take(arr, movers, axis=1, out=buf[:, :h])
-                    arr[:, holes] = buf[:, :h]
+            for lo in range(0, h, self._move_max):
+                hi = min(lo + self._move_max, h)
+                self._copy_slots(movers[lo:hi], holes[lo:hi])
             self.state[n_keep:k] = 0.0
             self.owner[n_keep:k] = -1
             self.count = n_keep
         return k - n_keep
+
+    def _copy_slots(self, src: NDArray[np.int64], dst: NDArray[np.int64]) -> None:
+        for arr, buf, axis in self._moved:
+            _gather_scatter(arr, src, arr, dst, buf, axis)
 
     def clear(self) -> None:
         """Remove every partial."""

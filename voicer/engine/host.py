@@ -25,6 +25,7 @@ __all__ = [
 ]
 
 import importlib.metadata
+import inspect
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Callable, Iterator, Protocol, runtime_checkable
 
@@ -143,7 +144,7 @@ class PluginInfo:
 
 
 def _missing_members(cls: type, protocol: type) -> list[str]:
-    wanted = {m for m in vars(protocol) if not m.startswith("_")} | set(vars(protocol).get("__annotations__", {}))
+    wanted = {m for m in vars(protocol) if not m.startswith("_")} | set(inspect.get_annotations(protocol))
     return [m for m in sorted(wanted) if not hasattr(cls, m)]
 
 
@@ -160,7 +161,7 @@ def discover(entry_points: Callable[..., Any] = importlib.metadata.entry_points)
         for ep in sorted(entry_points(group=group), key=lambda e: e.name):
             try:
                 cls = ep.load()
-            except Exception as exc:  # any import-time failure of a third-party plugin
+            except (Exception, SystemExit) as exc:  # any import-time failure of a third-party plugin
                 found.append(PluginInfo(kind, ep.name, ep.value, None, f"cannot be loaded: {type(exc).__name__}: {exc}"))
                 continue
             missing = _missing_members(cls, protocol) if isinstance(cls, type) else ["(not a class)"]

@@ -45,6 +45,8 @@ class KeyboardPlayer:
 
     def press(self, char: str) -> None:
         """Handle one key press."""
+        if not char:
+            return
         if char == "q":
             self.quit.set()
         elif char == " ":

@@ -36,7 +36,7 @@ from .voices import Voices
 
 #: Culling and freeing voices happens at every multiple of this many samples (absolute
 #: positions, so that it does not depend on the block size).
-HOUSEKEEPING_FRAMES = 1024
+HOUSEKEEPING_FRAMES = 512
 #: Bridge force (newtons) to full scale: a forte chord of the demo peaks near -6 dBFS.
 DEFAULT_GAIN_DB = -50.0
 DEFAULT_MAX_VOICES = 96
@@ -116,7 +116,7 @@ class Renderer:
         self.crossfade = max(1, int(round(crossfade_s * self.sample_rate)))
         self.banks, self.voices = [], []
         for state in states:
-            bank = OscillatorBank(2 * max_voices * state.max_partials, max_block=block)
+            bank = OscillatorBank(3 * max_voices * state.max_partials, max_block=block)
             self.banks.append(bank)
             self.voices.append(Voices(state, bank, max_voices=max_voices))
         self.safety = SafetyStage(block, ceiling_dbfs=ceiling_dbfs)
@@ -125,6 +125,7 @@ class Renderer:
         self._fade_left = 0  # samples of crossfade still to go (toward self.audible)
         self._ab_pressed = False
         self._position = 0  # absolute sample position
+        self._housekept = -1  # position of the last housekeeping
         self._mono = [np.zeros(block) for _ in states]
         self._mix = np.zeros(block)
         self._ramp = np.zeros(block)
@@ -194,36 +195,32 @@ class Renderer:
         """Fill ``out`` (channels, frames) with the next frames; apply each event at its
         sample offset (0 <= offset < frames, in time order; later offsets are clamped)."""
         frames = out.shape[1]
-        done = 0
         pending = iter(events)
         event = next(pending, None)
+        done = 0
         while done < frames:
             n = min(self.block, frames - done)
-            mix = self._mix[:n]
-            mix[:] = 0.0
+            self._mix[:n] = 0.0
             pos = 0
-            while pos < n:
-                end = n
-                while event is not None and min(event[0], frames - 1) - done < end:
-                    at = max(min(event[0], frames - 1) - done, pos)
-                    if at > pos:
-                        self._segment(pos, at)
-                        pos = at
-                    self.apply(event[1])
-                    event = next(pending, None)
-                # Split at housekeeping points so that they fall on the same samples
-                # whatever the block size.
-                to_hk = HOUSEKEEPING_FRAMES - (self._position % HOUSEKEEPING_FRAMES)
-                seg_end = min(end, pos + to_hk)
-                if seg_end > pos:
-                    self._segment(pos, seg_end)
-                    pos = seg_end
-                if self._position % HOUSEKEEPING_FRAMES == 0:
+            while True:
+                # At a housekeeping point: first housekeeping, then the events of that
+                # sample, so the order is the same however the stream is cut into blocks.
+                if self._position % HOUSEKEEPING_FRAMES == 0 and self._housekept != self._position:
                     for v in self.voices:
                         v.housekeeping(self.cull)
+                    self._housekept = self._position
+                while event is not None and min(event[0], frames - 1) - done <= pos:
+                    self.apply(event[1])
+                    event = next(pending, None)
+                if pos >= n:
+                    break
+                stop = n if event is None else min(n, min(event[0], frames - 1) - done)
+                stop = min(stop, pos + HOUSEKEEPING_FRAMES - self._position % HOUSEKEEPING_FRAMES)
+                self._segment(pos, stop)
+                pos = stop
             self._finish(out, done, n)
             done += n
-        while event is not None:  # offsets beyond the block: apply at its end
+        while event is not None:  # events given past the end of the block: apply now
             self.apply(event[1])
             event = next(pending, None)
 

@@ -37,18 +37,17 @@ class Voices:
     instrument : Instrument
         The voicing state.
     bank : OscillatorBank
-        Where the partials go; its capacity should hold ``2 * max_voices`` voices.
+        Where the partials go; its capacity should hold ``3 * max_voices`` voices.
     max_voices : int
         Polyphony limit (voices not fading out).
     """
 
     def __init__(self, instrument: Instrument, bank: OscillatorBank, *, max_voices: int) -> None:
         self.inst, self.bank, self.max_voices = instrument, bank, max_voices
-        ids = 2 * max_voices  # room for voices fading out
+        ids = 3 * max_voices  # room for voices fading out
         self.key_of = [-1] * ids
         self.level_of = [0] * ids
         self.fading = [False] * ids
-        self.released_at = [0] * ids
         self.free = list(range(ids - 1, -1, -1))
         self.by_key: list[list[int]] = [[] for _ in range(128)]
         self.held = [False] * 128
@@ -57,8 +56,8 @@ class Voices:
         self.sostenuto = False
         self.una_corda = False
         self.active = 0  # voices not fading
+        self._released: dict[int, None] = {}  # released, not fading voices, oldest first
         self.steals = 0
-        self._clock = 0
         self._amp = np.zeros(instrument.max_partials, dtype=np.complex128)
         self._counts = np.zeros(ids, dtype=np.int64)
         self._loudness = np.zeros(ids, dtype=np.float64)
@@ -72,6 +71,8 @@ class Voices:
         if data is None or velocity < 1:
             return
         self.held[key] = True
+        for v in self.by_key[key]:
+            self._released.pop(v, None)
         self._update_key(key)  # an already sounding key stops being damped
         n = len(data.freq_hz)
         while self.active >= self.max_voices:
@@ -86,7 +87,7 @@ class Voices:
             amp[:] = data.amplitude[min(velocity, 127)]
         v = self.free.pop()
         self.bank.add_tables(data.levels[0], amp, owner=v)
-        self.key_of[v], self.level_of[v], self.fading[v], self.released_at[v] = key, 0, False, 0
+        self.key_of[v], self.level_of[v], self.fading[v] = key, 0, False
         self.by_key[key].append(v)
         self.active += 1
 
@@ -95,9 +96,8 @@ class Voices:
         if not 0 <= key < 128 or not self.held[key]:
             return
         self.held[key] = False
-        self._clock += 1
         for v in self.by_key[key]:
-            self.released_at[v] = self._clock
+            self._released[v] = None
         self._update_key(key)
 
     def set_sustain(self, cc: int) -> None:
@@ -184,6 +184,7 @@ class Voices:
             return
         self.bank.retune(v, self.inst.keys[key].fade)
         self.by_key[key].remove(v)
+        self._released.pop(v, None)
         self.fading[v], self.level_of[v] = True, _FADING
         self.active -= 1
 
@@ -191,6 +192,7 @@ class Voices:
         key = self.key_of[v]
         if not self.fading[v]:
             self.by_key[key].remove(v)
+            self._released.pop(v, None)
             self.active -= 1
         self.key_of[v], self.fading[v] = -1, False
         self.free.append(v)
@@ -205,10 +207,8 @@ class Voices:
         return False
 
     def _victim(self) -> int:
-        released = [v for v, key in enumerate(self.key_of)
-                    if key >= 0 and not self.fading[v] and not self.held[key]]
-        if released:
-            return min(released, key=lambda v: self.released_at[v])
+        if self._released:
+            return next(iter(self._released))  # the longest released
         bank = self.bank
         mag = self._mag[: bank.count]
         np.abs(bank.state[: bank.count], out=mag)

@@ -14,6 +14,7 @@ from __future__ import annotations
 __all__ = ["MidiFileSource", "MidiPortSource", "list_input_ports", "format_ports"]
 
 import os
+import sys
 from contextlib import contextmanager
 from pathlib import Path
 from typing import Callable, Iterator
@@ -110,6 +111,27 @@ def _read_midi_file(path: Path) -> mido.MidiFile:
 
 
 @contextmanager
+def _quiet_c_stderr() -> Iterator[None]:
+    """Silence the C library's own stderr lines (ALSA prints its failures there before
+    rtmidi raises), so that the user gets voicer's one-line reason only."""
+    try:
+        fd = sys.stderr.fileno()
+    except (AttributeError, OSError, ValueError):  # no real stderr (e.g. captured): nothing to silence
+        yield
+        return
+    sys.stderr.flush()
+    saved = os.dup(fd)
+    devnull = os.open(os.devnull, os.O_WRONLY)
+    try:
+        os.dup2(devnull, fd)
+        yield
+    finally:
+        os.dup2(saved, fd)
+        os.close(saved)
+        os.close(devnull)
+
+
+@contextmanager
 def _rtmidi_errors(what: str) -> Iterator[None]:
     """Turn python-rtmidi's failures while doing ``what`` into one-line VoicerErrors."""
     try:
@@ -118,7 +140,8 @@ def _rtmidi_errors(what: str) -> Iterator[None]:
         raise VoicerError(f"MIDI ports are unavailable: python-rtmidi cannot be loaded ({exc}); install the "
                           f"Debian package libasound2, or {_ALTERNATIVES}") from None
     try:
-        yield
+        with _quiet_c_stderr():
+            yield
     except rtmidi.SystemError as exc:
         # Raised when the MIDI system itself (e.g. the ALSA sequencer) cannot be reached.
         raise VoicerError(f"MIDI ports are unavailable on this system: {str(exc).rstrip('.')}; {_ALTERNATIVES}") from None

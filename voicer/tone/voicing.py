@@ -76,6 +76,8 @@ def parse_keys(spec: Any, *, source: str | None = None, where: str = "keys") -> 
             raise PresetError(f"{where}: range {spec!r} runs backwards", file=source)
         return tuple(range(one(lo), one(hi) + 1))
     if isinstance(spec, list):
+        if not spec:
+            raise PresetError(f"{where}: the list of keys is empty", file=source)
         return tuple(sorted({one(k) for k in spec}))
     return (one(spec),)
 
@@ -85,7 +87,8 @@ def parse_voicing(data: Mapping[str, Any], *, source: str | None = None) -> Voic
     for name in data:
         if name not in _TOP:
             raise PresetError(f"unknown table or value '{name}'; allowed: {', '.join(_TOP)}", file=source)
-    if data.get("format", 1) != 1:
+    fmt = data.get("format", 1)
+    if fmt != 1 or isinstance(fmt, bool):
         raise PresetError(f"format = {data['format']!r} is not supported; this voicer reads format = 1", file=source)
     changes = []
     raw = data.get("change", [])

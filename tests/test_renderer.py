@@ -1,0 +1,367 @@
+"""The renderer: sample accuracy, the rendered spectrum against the modal table (measured
+from the audio with scipy), dampers and pedals, polyphony, A/B, safety, flood and
+real-time rules."""
+
+from __future__ import annotations
+
+import time
+import tracemalloc
+
+import mido
+import numpy as np
+import pytest
+from scipy import signal
+
+from voicer.engine.instrument import DAMPER_LEVELS, Instrument
+from voicer.engine.renderer import Renderer
+from voicer.io.sources import MidiFileSource
+from voicer.physics.tuning import cents
+from voicer.tone.tables import build_tables
+from voicer.tone.voicing import apply_voicing, load_voicing
+
+FS = 48_000
+KEYS = [48, 60, 64, 67, 72, 76, 96, 100]
+GAIN_DB = -50.0
+
+
+def on(note, vel=80):
+    return mido.Message("note_on", note=note, velocity=vel)
+
+
+def off(note):
+    return mido.Message("note_off", note=note)
+
+
+def cc(control, value):
+    return mido.Message("control_change", control=control, value=value)
+
+
+@pytest.fixture(scope="module")
+def full_tables(demo):
+    return build_tables(demo, use_cache=False)
+
+
+@pytest.fixture(scope="module")
+def tables(demo):
+    return build_tables(demo, keys=KEYS, use_cache=False)
+
+
+@pytest.fixture(scope="module")
+def tables_b(demo, demo_path):
+    plan = load_voicing(demo_path.parent.parent / "voicings" / "kestrel-190-mellow.toml")
+    return build_tables(apply_voicing(demo, plan), keys=KEYS, use_cache=False)
+
+
+def make(tables, *more, **kw):
+    states = [Instrument(t, sample_rate=FS, max_block=256, split=16, name=n)
+              for t, n in zip((tables, *more), "AB")]
+    return Renderer(states, gain_db=kw.pop("gain_db", GAIN_DB), **kw)
+
+
+def render(renderer, events, total, block=256):
+    """Render ``total`` samples calling process() with ``block`` frames at a time."""
+    out = np.zeros((2, total), dtype=np.float32)
+    events = sorted(events, key=lambda e: e[0])
+    i = pos = 0
+    while pos < total:
+        n = min(block, total - pos)
+        chunk = []
+        while i < len(events) and events[i][0] < pos + n:
+            chunk.append((events[i][0] - pos, events[i][1]))
+            i += 1
+        renderer.process(out[:, pos:pos + n], chunk)
+        pos += n
+    return out[0].astype(np.float64)
+
+
+def partial_track(y, freq_hz, t0=0.25, t1=None, cutoff_hz=25.0):
+    """Heterodyne a partial to 0 Hz and low-pass it (scipy.signal): returns t and the
+    complex envelope z(t), with y ~ Re(z exp(i 2 pi f t))."""
+    t = np.arange(len(y)) / FS
+    sos = signal.butter(4, cutoff_hz, fs=FS, output="sos")
+    base = y * np.exp(-2j * np.pi * freq_hz * t)
+    z = 2 * (signal.sosfiltfilt(sos, base.real) + 1j * signal.sosfiltfilt(sos, base.imag))
+    sel = (t >= t0) & (t <= (t1 if t1 is not None else t[-1] - 0.25))
+    return t[sel], z[sel]
+
+
+def measure(y, freq_hz, **kw):
+    """Frequency, decay rate and level at t = 0 of one partial, from the audio."""
+    t, z = partial_track(y, freq_hz, **kw)
+    decay, log0 = np.polyfit(t, np.log(np.abs(z)), 1)
+    turn = np.polyfit(t, np.unwrap(np.angle(z)), 1)[0]
+    return freq_hz + turn / (2 * np.pi), -decay, np.exp(log0)
+
+
+# --- sample accuracy ---------------------------------------------------------------
+
+def passage():
+    """A short passage touching every kind of event, some at block edges."""
+    return [(0, on(60)), (255, on(76, 50)), (256, on(64, 60)), (1000, cc(64, 127)), (2000, off(60)),
+            (2600, on(60, 100)), (3000, cc(66, 127)), (3500, off(64)), (4000, cc(67, 127)), (4200, on(72, 90)),
+            (5000, "flip"), (6000, off(72)), (6500, cc(64, 0)), (7000, cc(66, 0)), (7100, on(96)),
+            (8191, off(76)), (8192, cc(123, 0)), (9000, on(100, 127)), (10000, "flip")]
+
+
+@pytest.mark.parametrize("block", [1, 64, 65, 8193])
+def test_block_size_does_not_change_the_samples(tables, tables_b, block) -> None:
+    """The same MIDI rendered with blocks of 1, 64, 65, 256 and 8193 samples gives the
+    same samples (to float32 rounding of the bank's block products)."""
+    total = 12_000
+    ref = render(make(tables, tables_b), passage(), total, 256)
+    got = render(make(tables, tables_b), passage(), total, block)
+    assert np.abs(ref).max() > 0.01
+    np.testing.assert_allclose(got, ref, atol=2e-5 * np.abs(ref).max())
+
+
+def test_event_on_the_last_sample_of_a_block(tables) -> None:
+    r = make(tables)
+    out = np.zeros((2, 256), dtype=np.float32)
+    r.process(out, [(255, on(60))])
+    assert np.all(out[:, :255] == 0) and np.all(out[:, 255] != 0)
+
+
+def test_note_on_velocity_zero_is_a_note_off(tables, tmp_path) -> None:
+    """MIDI 1.0: note-on with velocity 0 means note-off (the file source normalises it)."""
+    def song(release):
+        mid = mido.MidiFile()
+        track = mido.MidiTrack([on(60), release.copy(time=240)])
+        mid.tracks.append(track)
+        path = tmp_path / f"{release.type}.mid"
+        mid.save(path)
+        return [(int(round(t * FS)), m) for t, m in MidiFileSource(path).events()]
+
+    zero = render(make(tables), song(mido.Message("note_on", note=60, velocity=0)), FS)
+    explicit = render(make(tables), song(off(60)), FS)
+    np.testing.assert_array_equal(zero, explicit)
+
+
+# --- the sound against the modal table -----------------------------------------------
+
+def test_sustained_spectrum_matches_the_table(tables) -> None:
+    """A held note, measured from the rendered audio (heterodyne + scipy.signal
+    Butterworth low-pass, line fits): partial frequencies within 0.1 cent, levels within
+    0.1 dB, decay rates within 1 % of the modal table the voice was built from."""
+    key, vel = 48, 90
+    r = make(tables)
+    y = render(r, [(0, on(key, vel))], 3 * FS)
+    assert np.abs(y).max() < 10 ** (-7 / 20)  # below the limiter's knee: nothing bent
+    data = r.states[0].keys[key]
+    gain = 10 ** (GAIN_DB / 20)
+    table = tables[key]
+    beta = tables.preset.scale.value("strike_ratio", key)
+    checked = 0
+    for n in range(1, 17):
+        start = abs(data.amplitude[vel, n - 1]) * gain
+        if abs(np.sin(n * np.pi * beta)) < 0.2 or start * np.exp(-table.sigma_per_s[n - 1] * 3.0) < 3e-5:
+            continue  # near a strike-point null, or culled (-100 dBFS) before the window ends
+        f, sigma, level = measure(y, table.freq_hz[n - 1])
+        assert abs(float(cents(f, table.freq_hz[n - 1]))) < 0.1, n
+        assert sigma == pytest.approx(table.sigma_per_s[n - 1], rel=0.01), n
+        assert 20 * np.log10(level / (abs(data.amplitude[vel, n - 1]) * gain)) == pytest.approx(0, abs=0.1), n
+        checked += 1
+    assert checked >= 8
+
+
+def test_velocity_map_and_layers(tables) -> None:
+    """The voice's amplitudes are the table interpolated at the velocity's hammer speed."""
+    from voicer.tone.velocity import hammer_speed
+
+    inst = make(tables).states[0]
+    speed = float(hammer_speed(100, tables.preset.instrument))
+    np.testing.assert_allclose(inst.keys[64].amplitude[100], tables[64].at_speed(speed), rtol=1e-12)
+
+
+# --- dampers and pedals ------------------------------------------------------------
+
+def released_decay(tables, events, key=60, t0=0.56, t1=0.75):
+    """Decay rate of the first partial shortly after a release at 0.5 s (while a damped
+    string is still well above the culling level)."""
+    y = render(make(tables), events, int(1.5 * FS))
+    return measure(y, tables[key].freq_hz[0], t0=t0, t1=t1)[1]
+
+
+def test_damper_adds_its_rate_on_release(tables) -> None:
+    sigma = tables[60].sigma_per_s[0]
+    damper = tables.preset.scale.value("damper_rate_per_s", 60)
+    got = released_decay(tables, [(0, on(60)), (int(0.5 * FS), off(60))])
+    assert got == pytest.approx(sigma + damper, rel=0.01)
+
+
+def test_sustain_pedal_holds_and_half_pedal_damps_in_part(tables) -> None:
+    sigma = tables[60].sigma_per_s[0]
+    damper = tables.preset.scale.value("damper_rate_per_s", 60)
+    held = released_decay(tables, [(0, cc(64, 127)), (0, on(60)), (int(0.5 * FS), off(60))])
+    assert held == pytest.approx(sigma, rel=0.01)
+    # CC 60 is half way between half_pedal_low_cc 30 and half_pedal_high_cc 90.
+    half = released_decay(tables, [(0, cc(64, 60)), (0, on(60)), (int(0.5 * FS), off(60))])
+    level = round(0.5 * DAMPER_LEVELS) / DAMPER_LEVELS
+    assert half == pytest.approx(sigma + level * damper, rel=0.01)
+
+
+def test_sostenuto_holds_only_the_keys_it_caught(tables) -> None:
+    events = [(0, on(60)), (100, cc(66, 127)), (200, on(64)), (int(0.5 * FS), off(60)), (int(0.5 * FS), off(64))]
+    y = render(make(tables), events, int(1.5 * FS))
+    s60 = measure(y, tables[60].freq_hz[0], t0=0.56, t1=0.75)[1]
+    s64 = measure(y, tables[64].freq_hz[0], t0=0.56, t1=0.75)[1]
+    assert s60 == pytest.approx(tables[60].sigma_per_s[0], rel=0.01)
+    assert s64 == pytest.approx(tables[64].sigma_per_s[0] + tables.preset.scale.value("damper_rate_per_s", 64),
+                                rel=0.01)
+
+
+def test_undamped_treble_rings_on(tables) -> None:
+    key = 100  # above last_damped_key = 88
+    y = render(make(tables), [(0, on(key)), (int(0.2 * FS), off(key))], FS)
+    sigma = measure(y, tables[key].freq_hz[0], t0=0.3, t1=0.7)[1]
+    assert sigma == pytest.approx(tables[key].sigma_per_s[0], rel=0.01)
+
+
+def test_una_corda_changes_the_strike(tables) -> None:
+    inst = tables.preset.instrument
+    plain = render(make(tables), [(0, on(60))], FS)
+    shifted = render(make(tables), [(0, cc(67, 127)), (0, on(60))], FS)
+    f = tables[60].freq_hz
+    for n in (1, 3):
+        a = measure(plain, f[n - 1])[2]
+        b = measure(shifted, f[n - 1])[2]
+        expected = inst["una_corda_level_db"] + inst["una_corda_tilt_db_per_octave"] * np.log2(f[n - 1] / f[0])
+        assert 20 * np.log10(b / a) == pytest.approx(expected, abs=0.1)
+
+
+def test_restrike_adds_to_the_vibrating_strings(tables) -> None:
+    """Striking a sounding key adds a new strike; the old vibration goes on (linear
+    superposition of the two strikes)."""
+    t1 = 7000
+    both = render(make(tables), [(0, on(60)), (t1, on(60, 100))], FS)
+    first = render(make(tables), [(0, on(60))], FS)
+    second = render(make(tables), [(t1, on(60, 100))], FS)
+    np.testing.assert_allclose(both, first + second, atol=2e-5 * np.abs(both).max())
+
+
+def test_all_notes_off_and_stop_clear_stuck_notes(tables) -> None:
+    stuck = [(0, on(60)), (0, on(64)), (0, on(67))]
+    ringing = render(make(tables), stuck, 2 * FS)
+    cleared = render(make(tables), stuck + [(int(0.5 * FS), cc(123, 0))], 2 * FS)
+    late = slice(int(1.5 * FS), 2 * FS)
+    assert np.abs(cleared[late]).max() < 0.05 * np.abs(ringing[late]).max()
+    r = make(tables)
+    render(r, stuck, FS // 2)
+    r.stop()
+    tail = render(r, [], FS // 4)
+    assert np.abs(tail[int(0.1 * FS):]).max() < 1e-5  # below -100 dBFS after 0.1 s
+    assert r.voices[0].voices == 0
+
+
+# --- polyphony, A/B, safety ---------------------------------------------------------
+
+def test_voice_limit_steals_released_voices_first(tables) -> None:
+    r = make(tables, max_voices=3)
+    voices = r.voices[0]
+    render(r, [(0, on(60)), (100, on(64)), (200, off(60)), (300, on(67)), (400, on(72))], 2000)
+    assert voices.active <= 3 and voices.steals == 1
+    sounding = {voices.key_of[v] for k in range(128) for v in voices.by_key[k]}
+    assert sounding == {64, 67, 72}  # 60, released, was the one faded out
+
+
+def test_ab_flip_crossfades_to_the_other_state(tables, tables_b) -> None:
+    events = [(0, on(60)), (0, on(67))]
+    flip_at = 10_000
+    ab = make(tables, tables_b)
+    fade = ab.crossfade
+    y = render(ab, events + [(flip_at, "flip")], 20_000)
+    only_a = render(make(tables), events, 20_000)
+    only_b = render(make(tables_b), events, 20_000)
+    tol = 2e-5 * np.abs(only_a).max()
+    np.testing.assert_allclose(y[:flip_at], only_a[:flip_at], atol=tol)
+    np.testing.assert_allclose(y[flip_at + fade:], only_b[flip_at + fade:], atol=tol)
+    assert not np.allclose(only_a, only_b, atol=100 * tol)  # the states really differ
+    assert ab.state_name == "B" and ab.stats.flips == 1
+
+
+def test_ab_by_controller_and_program_change(tables, tables_b) -> None:
+    r = make(tables, tables_b, ab_cc=80)
+    render(r, [(0, cc(80, 127)), (10, cc(80, 127)), (20, cc(80, 0))], 256)
+    assert r.state_name == "B"  # a press flips once, holding does not flip again
+    render(r, [(0, mido.Message("program_change", program=3))], 256)
+    assert r.state_name == "A"
+
+
+def test_output_is_capped_below_the_ceiling(tables) -> None:
+    r = make(tables, gain_db=0.0)  # absurdly loud on purpose
+    y = render(r, [(0, on(k, 127)) for k in KEYS], FS // 2)
+    ceiling = 10 ** (-1 / 20)
+    assert np.abs(y).max() <= ceiling + 1e-7 and r.safety.limited > 0
+
+
+def test_non_finite_state_is_zeroed_and_the_voice_reset(tables) -> None:
+    r = make(tables)
+    render(r, [(0, on(60)), (0, on(64))], 512)
+    bank = r.banks[0]
+    bad_owner = int(bank.owner[0])
+    bank.state[0] = np.nan
+    y = render(r, [], 512)
+    assert np.all(np.isfinite(y)) and r.stats.nonfinite > 0
+    assert bad_owner not in set(bank.owner[: bank.count].tolist())
+    assert np.abs(render(r, [], 512)).max() > 0  # the other voice plays on
+
+
+def test_flood_of_random_midi(full_tables) -> None:
+    """100,000 random MIDI events in 10 s of audio: the voice limit holds, every sample is
+    finite and below the ceiling, and the render time stays bounded."""
+    r = make(full_tables)
+    rng = np.random.default_rng(7)
+    n = 100_000
+    times = np.sort(rng.integers(0, 10 * FS, n))
+    kinds = rng.integers(0, 10, n)
+    events = []
+    for t, kind in zip(times.tolist(), kinds.tolist()):
+        key = int(rng.integers(21, 109))
+        if kind < 5:
+            events.append((t, on(key, int(rng.integers(1, 128)))))
+        elif kind < 9:
+            events.append((t, off(key)))
+        else:
+            events.append((t, cc(int(rng.choice([64, 66, 67])), int(rng.integers(0, 128)))))
+    out = np.zeros((2, 10 * FS), dtype=np.float32)
+    t0 = time.perf_counter()
+    i = pos = 0
+    peak_voices = 0
+    while pos < out.shape[1]:
+        chunk = []
+        while i < len(events) and events[i][0] < pos + 256:
+            chunk.append((events[i][0] - pos, events[i][1]))
+            i += 1
+        r.process(out[:, pos:pos + 256], chunk)
+        peak_voices = max(peak_voices, r.voices[0].active)
+        pos += 256
+    elapsed = time.perf_counter() - t0
+    assert peak_voices <= r.voices[0].max_voices
+    assert np.all(np.isfinite(out)) and np.abs(out).max() <= 10 ** (-1 / 20) + 1e-7
+    assert elapsed < 60.0, elapsed
+
+
+def test_callback_allocates_no_arrays_after_warm_up(full_tables) -> None:
+    """The audio callback body (Renderer.process) with notes, pedals and a flip creates no
+    array-sized temporaries: the traced peak grows by far less than one partial array."""
+    r = make(full_tables, full_tables, gain_db=-20.0)  # loud: fewer partials culled, a bigger bank
+    out = np.zeros((2, 256), dtype=np.float32)
+    chord = [(i, on(k, 110)) for i, k in enumerate(range(24, 96, 2))]
+    script = [[(5, cc(64, 127))], [(7, off(24)), (9, off(26))], [(1, "flip")], [(3, on(72, 110)), (4, cc(67, 127))],
+              [(100, cc(64, 0))], [(0, on(30))], [(50, on(26)), (60, cc(66, 127))], [(0, cc(66, 0))], [], []]
+    r.process(out, chord)
+    for events in script * 3:  # warm-up: every path once
+        r.process(out, events)
+    count = r.banks[0].count
+    assert count > 2000
+    tracemalloc.start()
+    try:
+        tracemalloc.reset_peak()
+        before, _ = tracemalloc.get_traced_memory()
+        for events in script * 4:
+            r.process(out, events)
+        _, peak = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    # An array over the sounding partials would take >= count * 8 bytes; Python's own
+    # small objects (events, ints) stay far below that.
+    assert peak - before < count * 8, (peak - before, count)
