@@ -12,6 +12,7 @@ import numpy as np
 import pytest
 from scipy import signal
 
+from voicer.engine.bank import DEFAULT_SPLIT
 from voicer.engine.instrument import DAMPER_LEVELS, Instrument
 from voicer.engine.renderer import Renderer
 from voicer.io.sources import MidiFileSource
@@ -53,7 +54,7 @@ def tables_b(demo, demo_path):
 
 
 def make(tables, *more, **kw):
-    states = [Instrument(t, sample_rate=FS, max_block=256, split=16, name=n)
+    states = [Instrument(t, sample_rate=FS, max_block=256, split=DEFAULT_SPLIT, name=n)
               for t, n in zip((tables, *more), "AB")]
     return Renderer(states, gain_db=kw.pop("gain_db", GAIN_DB), **kw)
 

@@ -14,7 +14,7 @@ import math
 import os
 import sys
 import tomllib
-from typing import Callable, Sequence
+from typing import Callable, NoReturn, Sequence
 
 from . import __version__
 from .errors import VoicerError
@@ -137,9 +137,16 @@ def _positive_int(text: str) -> int:
     return value
 
 
+class _Parser(argparse.ArgumentParser):
+    """Usage errors in one line, like every other error of voicer."""
+
+    def error(self, message: str) -> NoReturn:
+        self.exit(EXIT_BAD_INPUT, f"{self.prog}: error: {message} (see {self.prog} --help)\n")
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of all commands."""
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="voicer",
         description="Hear a piano voicing job before doing it.",
         epilog="examples:\n  voicer demo\n  voicer scale demo --json\n  voicer inspect demo --key 40 --velocity 90\n"

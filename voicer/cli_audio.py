@@ -13,6 +13,8 @@ import threading
 import time
 from pathlib import Path
 
+from threadpoolctl import threadpool_limits
+
 from .engine.host import discover, format_plugins
 from .engine.keyboard import HELP, KeyboardPlayer, raw_terminal
 from .engine.live import LiveInput
@@ -40,11 +42,11 @@ def render_file(preset: Preset, midi: str | Path, out: str | Path, *, voicing: s
                 state: str = "B") -> RenderResult:
     """Render a MIDI file through one voicing state (A: the preset, B: with the plan) to a file."""
     source = MidiFileSource(midi)
-    states = prepare_states(preset, voicing if state == "B" else None, sample_rate=sample_rate, block=block,
-                            model=model, both=False, progress=_tty())
-    renderer = Renderer(states, block=block, gain_db=gain_db)
-    with FileSink(out, subtype=subtype) as sink:
+    with FileSink(out, subtype=subtype) as sink:  # checks the output before the tables are built
         sink.open(sample_rate=sample_rate, channels=CHANNELS, block=block)
+        states = prepare_states(preset, voicing if state == "B" else None, sample_rate=sample_rate, block=block,
+                                model=model, both=False, progress=_tty())
+        renderer = Renderer(states, gain_db=gain_db)
         result = render_events(renderer, source.events(), sink, tail_s=tail_s, channels=CHANNELS, progress=_tty())
     return result
 
@@ -99,10 +101,17 @@ def _feed_file(path: str | Path, live: LiveInput, stop: threading.Event) -> None
 
 
 def cmd_play(args: argparse.Namespace) -> int:
+    # One BLAS thread in the audio process: with two, a block stalled for up to 8 ms
+    # while the other core was busy (measured on the target machine).
+    with threadpool_limits(limits=1):
+        return _play(args)
+
+
+def _play(args: argparse.Namespace) -> int:
     preset = load_preset(find_preset(args.preset))
     states = prepare_states(preset, args.voicing, sample_rate=args.sample_rate, block=args.block, model=args.model,
                             progress=_tty())
-    renderer = Renderer(states, block=args.block, gain_db=args.gain_db, ab_cc=args.ab_cc)
+    renderer = Renderer(states, gain_db=args.gain_db, ab_cc=args.ab_cc)
     live = LiveInput(args.sample_rate)
     stop = threading.Event()
     source: MidiPortSource | None = None

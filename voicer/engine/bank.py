@@ -34,7 +34,7 @@ from numpy.typing import NDArray
 from ..errors import ParameterError
 
 #: Samples per row of the block matrix (I): 16 rows of 16 make a 256-sample block.
-DEFAULT_SPLIT = 16
+DEFAULT_SPLIT = 32
 #: Partials summed in one float32 product before the sum goes to float64.
 DEFAULT_CHUNK = 4096
 _MOVE_CHUNK = 8192  # slots moved per step when compacting (bounds the scratch memory)
@@ -196,15 +196,27 @@ class OscillatorBank:
         self.count = hi
         return lo
 
-    def add_tables(self, tables: PartialTables, amplitude: NDArray[np.complex128], owner: int) -> int:
-        """Add partials from precomputed tables (no exponentials computed); ``index``
-        records each partial's row in ``tables``. Returns the first slot used."""
+    def add_tables(self, tables: PartialTables, amplitude: NDArray[np.complex128], owner: int, at: int = 0) -> int:
+        """Add partials from precomputed tables; ``index`` records each partial's row in
+        ``tables``. Returns the first slot used.
+
+        ``at`` is the sample of the current block where they start (``amplitude`` is
+        theirs at that sample): their state is referred back to the block start, so the
+        block's later segments render them from ``at`` on. Render the samples before
+        ``at`` first.
+        """
         n = len(tables.lam)
         lo, hi = self.count, self.count + n
         if hi > self.capacity:
             raise ParameterError(f"oscillator bank full: {self.count} + {n} partials > capacity {self.capacity}")
         self.lam[lo:hi] = tables.lam
-        self.state[lo:hi] = amplitude
+        if at:
+            back = self._scratch[:n]
+            np.multiply(tables.lam, -float(at), out=back)
+            np.exp(back, out=back)
+            np.multiply(amplitude, back, out=self.state[lo:hi])
+        else:
+            self.state[lo:hi] = amplitude
         self.owner[lo:hi] = owner
         self.index[lo:hi] = self._slots[:n]
         self._table[lo:hi] = tables.table
@@ -213,9 +225,15 @@ class OscillatorBank:
         self.count = hi
         return lo
 
-    def retune(self, owner: int, tables: PartialTables) -> int:
+    def retune(self, owner: int, tables: PartialTables, at: int = 0) -> int:
         """Give every partial of ``owner`` the decay and frequency of its row in ``tables``
-        (e.g. a damper falling on a key) from the next sample on. Returns how many."""
+        (e.g. a damper falling on a key) from sample ``at`` of the current block on.
+        Returns how many.
+
+        The state is referred back to the block start under the new factor:
+        ``c' = c p_old^at p_new^-at``, so that ``c' p_new^n`` is right for ``n >= at``.
+        Render the samples before ``at`` first.
+        """
         k = self.count
         mask = self._keep[:k]
         np.equal(self.owner[:k], owner, out=mask)
@@ -224,6 +242,20 @@ class OscillatorBank:
             return 0
         slots = np.compress(mask, self._slots[:k], out=self._holes[:h])
         rows = np.compress(mask, self.index[:k], out=self._movers[:h])
+        if at:
+            old = self._moved[1][1]  # lam-shaped scratch
+            new = self._scratch
+            for lo in range(0, h, self._move_max):
+                hi = min(lo + self._move_max, h)
+                n = hi - lo
+                np.take(self.lam, slots[lo:hi], out=old[:n], mode="clip")
+                np.take(tables.lam, rows[lo:hi], out=new[:n], mode="clip")
+                np.subtract(old[:n], new[:n], out=old[:n])
+                np.multiply(old[:n], float(at), out=old[:n])
+                np.exp(old[:n], out=old[:n])
+                np.take(self.state, slots[lo:hi], out=new[:n], mode="clip")
+                np.multiply(new[:n], old[:n], out=new[:n])
+                self.state[slots[lo:hi]] = new[:n]
         for lo in range(0, h, self._move_max):
             hi = min(lo + self._move_max, h)
             n = hi - lo
@@ -241,34 +273,46 @@ class OscillatorBank:
     # --- rendering ---------------------------------------------------------------
 
     def render(self, out: NDArray[np.floating], frames: int) -> None:
-        """Add the next ``frames`` samples of the sum to ``out[:frames]`` and advance.
+        """Add the next ``frames`` samples of the sum to ``out[:frames]`` and advance."""
+        self.render_segment(out, 0, frames)
+        self.advance(frames)
+
+    def render_segment(self, out: NDArray[np.floating], start: int, stop: int) -> None:
+        """Add samples ``start..stop-1`` of the current block to ``out[:stop - start]``.
+
+        The states refer to the start of the block; a block may be rendered in several
+        segments (between events) and is then closed with :meth:`advance`. Segments need
+        no advance of their own: a segment starting at ``start`` uses the rows of the
+        ``p^(I j)`` table from ``start // I`` on.
 
         Parameters
         ----------
-        out : ndarray float (>= frames,)
+        out : ndarray float (>= stop - start,)
             Accumulator (float32 or float64).
-        frames : int, 1 <= frames <= max_block
-            Samples to render.
+        start, stop : int, 0 <= start < stop <= max_block
+            Sample range within the block.
         """
-        if not 1 <= frames <= self.max_block:
-            raise ParameterError(f"frames={frames} must lie in 1..{self.max_block}")
+        if not 0 <= start < stop <= self.max_block:
+            raise ParameterError(f"segment {start}..{stop} must lie within 0..{self.max_block}")
         k_all = self.count
-        if k_all:
-            rows = -(-frames // self.split)
-            acc = self._sum[:rows]
-            acc[:] = 0.0
-            np.copyto(self._c32[:k_all], self.state[:k_all], casting="same_kind")
-            for lo in range(0, k_all, self.chunk):
-                hi = min(lo + self.chunk, k_all)
-                k = hi - lo
-                a = self._rows[: rows * k].reshape(rows, k)
-                for j in range(rows):  # row by row: a 2-D strided product would make numpy buffer
-                    np.multiply(self._steps[j, lo:hi], self._c32[lo:hi], out=a[j])
-                part = self._part[:rows]
-                np.matmul(a.view(np.float32), self._table[lo:hi].reshape(2 * k, self.split), out=part)
-                acc += part
-            out[:frames] += acc.reshape(-1)[:frames]
-        self.advance(frames)
+        if not k_all:
+            return
+        first, last = start // self.split, -(-stop // self.split)
+        rows = last - first
+        acc = self._sum[:rows]
+        acc[:] = 0.0
+        np.copyto(self._c32[:k_all], self.state[:k_all], casting="same_kind")
+        for lo in range(0, k_all, self.chunk):
+            hi = min(lo + self.chunk, k_all)
+            k = hi - lo
+            a = self._rows[: rows * k].reshape(rows, k)
+            for j in range(rows):  # row by row: a 2-D strided product would make numpy buffer
+                np.multiply(self._steps[first + j, lo:hi], self._c32[lo:hi], out=a[j])
+            part = self._part[:rows]
+            np.matmul(a.view(np.float32), self._table[lo:hi].reshape(2 * k, self.split), out=part)
+            acc += part
+        skip = start - first * self.split
+        out[: stop - start] += acc.reshape(-1)[skip: skip + stop - start]
 
     def advance(self, frames: int) -> None:
         """Move every partial ``frames`` (1..max_block) samples on without rendering."""

@@ -72,6 +72,7 @@ class Instrument:
         inst = preset.instrument
         self.name = name
         self.preset = preset
+        self.max_block, self.split = int(max_block), int(split)
         self.sample_rate = float(sample_rate)
         self.last_damped_key = int(inst["last_damped_key"])
         self.half_pedal = (int(inst["half_pedal_low_cc"]), int(inst["half_pedal_high_cc"]))

@@ -36,7 +36,7 @@ from .voices import Voices
 
 #: Culling and freeing voices happens at every multiple of this many samples (absolute
 #: positions, so that it does not depend on the block size).
-HOUSEKEEPING_FRAMES = 512
+HOUSEKEEPING_FRAMES = 2048
 #: Bridge force (newtons) to full scale: a forte chord of the demo peaks near -6 dBFS.
 DEFAULT_GAIN_DB = -50.0
 DEFAULT_MAX_VOICES = 96
@@ -74,9 +74,8 @@ class Renderer:
     Parameters
     ----------
     states : sequence of Instrument
-        One state, or two for A/B (same sample rate and block size).
-    block : int
-        Largest block handed to the oscillator banks (larger calls are split).
+        One state, or two for A/B, prepared for the same sample rate and block size
+        (their ``max_block``: larger calls to :meth:`process` are split).
     max_voices : int
         Polyphony limit per state.
     gain_db : float
@@ -93,20 +92,22 @@ class Renderer:
         Length of the A/B crossfade.
     cull_dbfs : float
         Partials below this output level are dropped.
+    capacity : int, optional
+        Partials each bank can hold; default room for ``3 * max_voices`` of the largest
+        voice (voices fading out included).
     """
 
-    def __init__(self, states: Sequence[Instrument], *, block: int = 256, max_voices: int = DEFAULT_MAX_VOICES,
+    def __init__(self, states: Sequence[Instrument], *, max_voices: int = DEFAULT_MAX_VOICES,
                  gain_db: float = DEFAULT_GAIN_DB, ceiling_dbfs: float = DEFAULT_CEILING_DBFS,
                  effects: Sequence[Effect] = (), ab_cc: int | None = None, ab_program_change: bool = True,
-                 crossfade_s: float = 0.02, cull_dbfs: float = DEFAULT_CULL_DBFS) -> None:
+                 crossfade_s: float = 0.02, cull_dbfs: float = DEFAULT_CULL_DBFS, capacity: int | None = None) -> None:
         if not 1 <= len(states) <= 2:
             raise ParameterError(f"{len(states)} voicing states given; the renderer takes 1 (A) or 2 (A and B)")
-        if block < 16:
-            raise ParameterError(f"block={block} must be >= 16")
-        rates = {s.sample_rate for s in states}
+        rates = {(s.sample_rate, s.max_block, s.split) for s in states}
         if len(rates) != 1:
-            raise ParameterError(f"voicing states have different sample rates {sorted(rates)}")
-        self.sample_rate = rates.pop()
+            raise ParameterError(f"voicing states prepared differently (sample rate, block, split): {sorted(rates)}")
+        block, split = states[0].max_block, states[0].split
+        self.sample_rate = states[0].sample_rate
         self.states = list(states)
         self.block = block
         self.gain = 10.0 ** (gain_db / 20.0)
@@ -116,7 +117,8 @@ class Renderer:
         self.crossfade = max(1, int(round(crossfade_s * self.sample_rate)))
         self.banks, self.voices = [], []
         for state in states:
-            bank = OscillatorBank(3 * max_voices * state.max_partials, max_block=block)
+            room = capacity if capacity is not None else 3 * max_voices * state.max_partials
+            bank = OscillatorBank(room, max_block=block, split=split)
             self.banks.append(bank)
             self.voices.append(Voices(state, bank, max_voices=max_voices))
         self.safety = SafetyStage(block, ceiling_dbfs=ceiling_dbfs)
@@ -145,8 +147,9 @@ class Renderer:
         self._fade_left = self.crossfade - self._fade_left  # reverse a crossfade in progress
         self.stats.flips += 1
 
-    def apply(self, message: mido.Message | str) -> None:
-        """Apply one normalised MIDI message, or the command ``"flip"``, to every state now."""
+    def apply(self, message: mido.Message | str, at: int = 0) -> None:
+        """Apply one normalised MIDI message, or the command ``"flip"``, to every state,
+        at sample ``at`` of the block being rendered (0 between blocks)."""
         if isinstance(message, str):
             if message == "flip":
                 self.flip()
@@ -154,16 +157,16 @@ class Renderer:
         kind = message.type
         if kind == "note_on":
             for v in self.voices:
-                v.note_on(message.note, message.velocity)
+                v.note_on(message.note, message.velocity, at)
         elif kind == "note_off":
             for v in self.voices:
-                v.note_off(message.note)
+                v.note_off(message.note, at)
         elif kind == "control_change":
-            self._control(message.control, message.value)
+            self._control(message.control, message.value, at)
         elif kind == "program_change" and self.ab_program_change:
             self.flip()
 
-    def _control(self, control: int, value: int) -> None:
+    def _control(self, control: int, value: int, at: int) -> None:
         if control == self.ab_cc:
             pressed = value >= 64
             if pressed and not self._ab_pressed:
@@ -172,15 +175,15 @@ class Renderer:
             return
         for v in self.voices:
             if control == CC_SUSTAIN:
-                v.set_sustain(value)
+                v.set_sustain(value, at)
             elif control == CC_SOSTENUTO:
-                v.set_sostenuto(value >= 64)
+                v.set_sostenuto(value >= 64, at)
             elif control == CC_UNA_CORDA:
                 v.set_una_corda(value >= 64)
             elif control == CC_ALL_NOTES_OFF:
-                v.all_notes_off()
+                v.all_notes_off(at)
             elif control == CC_ALL_SOUND_OFF:
-                v.all_sound_off()
+                v.all_sound_off(at)
 
     def stop(self) -> None:
         """Clear every key and pedal and fade all sound (end of a render, Ctrl-C)."""
@@ -199,25 +202,26 @@ class Renderer:
         event = next(pending, None)
         done = 0
         while done < frames:
-            n = min(self.block, frames - done)
+            # Blocks end at housekeeping points, so that culling always sees the true
+            # states at the same samples, whatever the caller's block size.
+            n = min(self.block, frames - done, HOUSEKEEPING_FRAMES - self._position % HOUSEKEEPING_FRAMES)
+            if self._position % HOUSEKEEPING_FRAMES == 0 and self._housekept != self._position:
+                for v in self.voices:
+                    v.housekeeping(self.cull)
+                self._housekept = self._position
             self._mix[:n] = 0.0
             pos = 0
             while True:
-                # At a housekeeping point: first housekeeping, then the events of that
-                # sample, so the order is the same however the stream is cut into blocks.
-                if self._position % HOUSEKEEPING_FRAMES == 0 and self._housekept != self._position:
-                    for v in self.voices:
-                        v.housekeeping(self.cull)
-                    self._housekept = self._position
                 while event is not None and min(event[0], frames - 1) - done <= pos:
-                    self.apply(event[1])
+                    self.apply(event[1], pos)
                     event = next(pending, None)
                 if pos >= n:
                     break
                 stop = n if event is None else min(n, min(event[0], frames - 1) - done)
-                stop = min(stop, pos + HOUSEKEEPING_FRAMES - self._position % HOUSEKEEPING_FRAMES)
                 self._segment(pos, stop)
                 pos = stop
+            for bank in self.banks:
+                bank.advance(n)  # close the block: every state moves n samples on
             self._finish(out, done, n)
             done += n
         while event is not None:  # events given past the end of the block: apply now
@@ -225,18 +229,17 @@ class Renderer:
             event = next(pending, None)
 
     def _segment(self, lo: int, hi: int) -> None:
-        """Render samples lo..hi of the current block into the mix."""
+        """Render samples lo..hi of the current block into the mix (states refer to the
+        block start; the banks are advanced when the block is closed)."""
         n = hi - lo
-        fading = self._fade_left > 0
-        for s, bank in enumerate(self.banks):
-            if s == self.audible or fading:
+        mix = self._mix[lo:hi]
+        if self._fade_left <= 0:
+            self.banks[self.audible].render_segment(mix, lo, hi)
+        else:
+            for s, bank in enumerate(self.banks):
                 buf = self._mono[s][:n]
                 buf[:] = 0.0
-                bank.render(buf, n)
-            else:
-                bank.advance(n)
-        mix = self._mix[lo:hi]
-        if fading:
+                bank.render_segment(buf, lo, hi)
             # Linear crossfade toward the audible state, counted in samples.
             m = min(n, self._fade_left)
             ramp = self._ramp[:n]
@@ -247,8 +250,6 @@ class Renderer:
             np.multiply(mix, ramp, out=mix)
             np.add(mix, frm, out=mix)
             self._fade_left -= m
-        else:
-            mix += self._mono[self.audible][:n]
         self._position += n
 
     def _fill_ramp(self, ramp: NDArray[np.float64], m: int, start: float) -> None:
@@ -276,7 +277,7 @@ class Renderer:
         count = self.banks[self.audible].count
         st.peak_partials = max(st.peak_partials, count)
         st.partial_blocks += count
-        st.peak_abs = max(st.peak_abs, float(mix.max()), -float(mix.min()))
+        st.peak_abs = max(st.peak_abs, self.safety.peak)
         st.nonfinite = self.safety.nonfinite
 
     def _reset_bad_voices(self) -> None:

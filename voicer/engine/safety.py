@@ -18,6 +18,8 @@ from __future__ import annotations
 
 __all__ = ["SafetyStage", "DEFAULT_CEILING_DBFS"]
 
+import math
+
 import numpy as np
 from numpy.typing import NDArray
 
@@ -48,23 +50,32 @@ class SafetyStage:
         self.knee = self.ceiling * 10.0 ** (-knee_db / 20.0)
         self.nonfinite = 0
         self.limited = 0  # samples bent by the limiter
+        self.peak = 0.0  # largest magnitude of the last block, after the stage
         self._mag = np.zeros(max_block)
         self._over = np.zeros(max_block, dtype=bool)
         self._ok = np.zeros(max_block, dtype=bool)
 
     def process(self, x: NDArray[np.float64]) -> bool:
-        """Make ``x`` safe in place; returns False if it held non-finite samples."""
+        """Make ``x`` safe in place; returns False if it held non-finite samples.
+
+        ``peak`` is then the largest magnitude leaving.
+        """
         n = len(x)
-        ok = self._ok[:n]
-        np.isfinite(x, out=ok)
-        clean = bool(ok.all())
-        if not clean:
-            self.nonfinite += int(n - np.count_nonzero(ok))
-            np.copyto(x, 0.0, where=~ok)
-        mag, over = self._mag[:n], self._over[:n]
+        mag = self._mag[:n]
         np.abs(x, out=mag)
-        np.greater(mag, self.knee, out=over)
-        if over.any():
+        top = float(mag.max()) if n else 0.0
+        clean = math.isfinite(top)
+        if not clean:  # rare: find and zero the bad samples
+            ok = self._ok[:n]
+            np.isfinite(x, out=ok)
+            self.nonfinite += int(n - np.count_nonzero(ok))
+            np.logical_not(ok, out=ok)
+            np.copyto(x, 0.0, where=ok)
+            np.abs(x, out=mag)
+            top = float(mag.max())
+        if top > self.knee:
+            over = self._over[:n]
+            np.greater(mag, self.knee, out=over)
             self.limited += int(np.count_nonzero(over))
             span = self.ceiling - self.knee
             np.subtract(mag, self.knee, out=mag)
@@ -74,5 +85,7 @@ class SafetyStage:
             np.add(mag, self.knee, out=mag)
             np.copysign(mag, x, out=mag)
             np.copyto(x, mag, where=over)
-        np.clip(x, -self.ceiling, self.ceiling, out=x)
+            np.clip(x, -self.ceiling, self.ceiling, out=x)
+            top = min(self.knee + span * math.tanh((top - self.knee) / span), self.ceiling)
+        self.peak = top
         return clean

@@ -65,20 +65,21 @@ class Voices:
 
     # --- events ------------------------------------------------------------------
 
-    def note_on(self, key: int, velocity: int) -> None:
-        """Strike a key (velocity 1..127); keys outside the instrument are ignored."""
+    def note_on(self, key: int, velocity: int, at: int = 0) -> None:
+        """Strike a key (velocity 1..127) at sample ``at`` of the current block; keys
+        outside the instrument are ignored."""
         data = self.inst.keys.get(key)
         if data is None or velocity < 1:
             return
         self.held[key] = True
         for v in self.by_key[key]:
             self._released.pop(v, None)
-        self._update_key(key)  # an already sounding key stops being damped
+        self._update_key(key, at)  # an already sounding key stops being damped
         n = len(data.freq_hz)
         while self.active >= self.max_voices:
-            self._steal()
+            self._steal(at=at)
         while not self.free or self.bank.count + n > self.bank.capacity:
-            if not self._drop_fading() and not self._steal(hard=True):
+            if not self._drop_fading() and not self._steal(hard=True, at=at):
                 return  # nothing left to make room with (cannot happen with a sane capacity)
         amp = self._amp[:n]
         if self.una_corda:
@@ -86,49 +87,49 @@ class Voices:
         else:
             amp[:] = data.amplitude[min(velocity, 127)]
         v = self.free.pop()
-        self.bank.add_tables(data.levels[0], amp, owner=v)
+        self.bank.add_tables(data.levels[0], amp, owner=v, at=at)
         self.key_of[v], self.level_of[v], self.fading[v] = key, 0, False
         self.by_key[key].append(v)
         self.active += 1
 
-    def note_off(self, key: int) -> None:
+    def note_off(self, key: int, at: int = 0) -> None:
         """Release a key: its damper falls unless a pedal holds it."""
         if not 0 <= key < 128 or not self.held[key]:
             return
         self.held[key] = False
         for v in self.by_key[key]:
             self._released[v] = None
-        self._update_key(key)
+        self._update_key(key, at)
 
-    def set_sustain(self, cc: int) -> None:
+    def set_sustain(self, cc: int, at: int = 0) -> None:
         """Sustain pedal position, CC 64 value 0..127 (half pedal in between)."""
         self.sustain_cc = cc
-        self._update_all()
+        self._update_all(at)
 
-    def set_sostenuto(self, down: bool) -> None:
+    def set_sostenuto(self, down: bool, at: int = 0) -> None:
         """Sostenuto pedal (CC 66): going down catches the keys held at that moment."""
         if down and not self.sostenuto:
             self.caught = list(self.held)
         elif not down:
             self.caught = [False] * 128
         self.sostenuto = down
-        self._update_all()
+        self._update_all(at)
 
     def set_una_corda(self, down: bool) -> None:
         """Una corda pedal (CC 67): changes the strikes made while it is down."""
         self.una_corda = down
 
-    def all_notes_off(self) -> None:
+    def all_notes_off(self, at: int = 0) -> None:
         """Release every key (MIDI CC 123); pedals still hold what they hold."""
         for key in range(128):
             if self.held[key]:
-                self.note_off(key)
+                self.note_off(key, at)
 
-    def all_sound_off(self) -> None:
+    def all_sound_off(self, at: int = 0) -> None:
         """Fade every voice out now (CC 120, stop, panic)."""
         for key in range(128):
             for v in list(self.by_key[key]):
-                self._fade(v)
+                self._fade(v, at)
             self.held[key] = False
         self.caught = [False] * 128
 
@@ -137,7 +138,8 @@ class Voices:
     def housekeeping(self, threshold: float) -> None:
         """Drop inaudible partials and free voices that have none left."""
         bank = self.bank
-        bank.cull(threshold)
+        if not bank.cull(threshold):
+            return  # voices only run out of partials by culling (the rest free their ids)
         counts = self._counts
         counts[:] = 0
         np.add.at(counts, bank.owner[: bank.count], 1)
@@ -163,7 +165,7 @@ class Voices:
             return 0
         return self.inst.damper_level(self.sustain_cc)
 
-    def _update_key(self, key: int) -> None:
+    def _update_key(self, key: int, at: int = 0) -> None:
         voices = self.by_key[key]
         if not voices:
             return
@@ -171,18 +173,19 @@ class Voices:
         tables = self.inst.keys[key].levels[level]
         for v in voices:
             if self.level_of[v] != level:
-                self.bank.retune(v, tables)
+                self.bank.retune(v, tables, at)
                 self.level_of[v] = level
 
-    def _update_all(self) -> None:
-        for key in range(128):
-            self._update_key(key)
+    def _update_all(self, at: int = 0) -> None:
+        for key, voices in enumerate(self.by_key):
+            if voices:
+                self._update_key(key, at)
 
-    def _fade(self, v: int) -> None:
+    def _fade(self, v: int, at: int = 0) -> None:
         key = self.key_of[v]
         if key < 0 or self.fading[v]:
             return
-        self.bank.retune(v, self.inst.keys[key].fade)
+        self.bank.retune(v, self.inst.keys[key].fade, at)
         self.by_key[key].remove(v)
         self._released.pop(v, None)
         self.fading[v], self.level_of[v] = True, _FADING
@@ -218,7 +221,7 @@ class Voices:
         candidates = [v for v, key in enumerate(self.key_of) if key >= 0 and not self.fading[v]]
         return min(candidates, key=lambda v: loud[v])
 
-    def _steal(self, hard: bool = False) -> bool:
+    def _steal(self, hard: bool = False, at: int = 0) -> bool:
         """Fade (or with ``hard``, remove) one voice to make room; False if none."""
         if not self.active:
             return False
@@ -228,5 +231,5 @@ class Voices:
             self.bank.remove_owner(v)
             self._release_id(v)
         else:
-            self._fade(v)
+            self._fade(v, at)
         return True
