@@ -51,7 +51,7 @@ class PartialTables:
     lam: NDArray[np.complex128]  # (n,) log of the per-sample factor
     table: NDArray[np.float32]  # (n, 2, split) [Re p^i, -Im p^i]
     steps: NDArray[np.complex64]  # (rows, n) p^(I j)
-    powers: NDArray[np.complex128]  # (bits, n) p^(2^b), b = 0..bits-1
+    powers: NDArray[np.complex128]  # (n, bits) p^(2^b), b = 0..bits-1
 
 
 def partial_tables(lam: NDArray[np.complex128], *, split: int, max_block: int) -> PartialTables:
@@ -63,7 +63,7 @@ def partial_tables(lam: NDArray[np.complex128], *, split: int, max_block: int) -
     table[:, 0] = tab.real
     table[:, 1] = -tab.imag
     steps = np.exp(np.outer(np.arange(rows) * split, lam)).astype(np.complex64)
-    powers = np.exp(np.outer(2.0 ** np.arange(_bits(max_block)), lam))
+    powers = np.exp(np.outer(lam, 2.0 ** np.arange(_bits(max_block))))
     return PartialTables(lam=lam.copy(), table=table, steps=steps, powers=powers)
 
 
@@ -76,17 +76,17 @@ def _gather_scatter(src: NDArray, src_idx: NDArray[np.int64], dst: NDArray, dst_
                     buf: NDArray, axis: int) -> None:
     """``dst[dst_idx] = src[src_idx]`` along ``axis`` through ``buf``, without temporaries.
 
-    ``mode="clip"`` keeps ``np.take`` from buffering its output (the indices are valid);
+    ``mode="clip"`` keeps ``take`` from buffering its output (the indices are valid);
     along axis 1 each row goes separately, since a strided 2-D ``out`` would be buffered.
     """
     n = len(src_idx)
     if axis == 0:
-        np.take(src, src_idx, axis=0, out=buf[:n], mode="clip")
+        src.take(src_idx, axis=0, out=buf[:n], mode="clip")
         dst[dst_idx] = buf[:n]
     else:
         for j in range(src.shape[0]):
             row = buf[j, :n]
-            np.take(src[j], src_idx, out=row, mode="clip")
+            src[j].take(src_idx, out=row, mode="clip")
             dst[j, dst_idx] = row
 
 
@@ -120,7 +120,8 @@ class OscillatorBank:
         self._table = np.zeros((capacity, 2, split), dtype=np.float32)  # [Re p^i, -Im p^i]
         self._steps = np.zeros((rows, capacity), dtype=np.complex64)  # p^(I j), slots along the rows
         self._bits = _bits(max_block)
-        self._powers = np.zeros((self._bits, capacity), dtype=np.complex128)  # p^(2^b)
+        # p^(2^b), slot-major: advance reads one column per block, moves take whole rows.
+        self._powers = np.zeros((capacity, self._bits), dtype=np.complex128)
         # Scratch, sized once.
         self._c32 = np.zeros(capacity, dtype=np.complex64)
         self._rows = np.zeros(rows * chunk, dtype=np.complex64)  # viewed as a contiguous (rows, k)
@@ -136,13 +137,17 @@ class OscillatorBank:
         self._hole_mask = np.zeros(capacity, dtype=bool)
         self._slots = np.arange(capacity)
         self._holes = np.zeros(capacity, dtype=np.int64)
+        self._picked = np.zeros(capacity, dtype=np.int64)  # slots of a partial render
+        self._g_state = np.zeros(chunk, dtype=np.complex128)
+        self._g_c32 = np.zeros(chunk, dtype=np.complex64)
+        self._g_step = np.zeros(chunk, dtype=np.complex64)
+        self._g_table = np.zeros((chunk, 2, split), dtype=np.float32)
         self._movers = np.zeros(capacity, dtype=np.int64)
         # Scratch for moving slots, a bounded number at a time (see _compact).
         self._move_max = min(capacity, _MOVE_CHUNK)
         self._moved = [(arr, np.zeros((self._move_max, *arr.shape[1:]), dtype=arr.dtype), 0) for arr in
-                       (self.state, self.lam, self.owner, self.index, self._table)]
-        for arr in (self._steps, self._powers):
-            self._moved.append((arr, np.zeros((arr.shape[0], self._move_max), dtype=arr.dtype), 1))
+                       (self.state, self.lam, self.owner, self.index, self._table, self._powers)]
+        self._moved.append((self._steps, np.zeros((self._steps.shape[0], self._move_max), dtype=self._steps.dtype), 1))
 
     # --- adding and changing partials ------------------------------------------------
 
@@ -161,7 +166,7 @@ class OscillatorBank:
         adv = self._scratch[: hi - lo]
         for b in range(self._bits):
             np.multiply(self.lam[lo:hi], float(1 << b), out=adv)
-            np.exp(adv, out=self._powers[b, lo:hi])
+            np.exp(adv, out=self._powers[lo:hi, b])
 
     def add(self, lam: NDArray[np.complex128], amplitude: NDArray[np.complex128], owner: int,
             index: NDArray[np.int64] | None = None) -> int:
@@ -196,14 +201,16 @@ class OscillatorBank:
         self.count = hi
         return lo
 
-    def add_tables(self, tables: PartialTables, amplitude: NDArray[np.complex128], owner: int, at: int = 0) -> int:
+    def add_tables(self, tables: PartialTables, amplitude: NDArray[np.complex128], owner: int, at: int = 0,
+                   correct: tuple[NDArray[np.floating], int] | None = None) -> int:
         """Add partials from precomputed tables; ``index`` records each partial's row in
         ``tables``. Returns the first slot used.
 
         ``at`` is the sample of the current block where they start (``amplitude`` is
         theirs at that sample): their state is referred back to the block start, so the
-        block's later segments render them from ``at`` on. Render the samples before
-        ``at`` first.
+        block's later segments render them from ``at`` on. With ``correct = (out, stop)``
+        (the block already rendered into ``out``), their samples ``at..stop-1`` are added
+        to it.
         """
         n = len(tables.lam)
         lo, hi = self.count, self.count + n
@@ -221,18 +228,22 @@ class OscillatorBank:
         self.index[lo:hi] = self._slots[:n]
         self._table[lo:hi] = tables.table
         self._steps[:, lo:hi] = tables.steps
-        self._powers[:, lo:hi] = tables.powers
+        self._powers[lo:hi] = tables.powers
         self.count = hi
+        if correct is not None:
+            self.render_slots(correct[0][at:], self._slots[lo:hi], at, correct[1])
         return lo
 
-    def retune(self, owner: int, tables: PartialTables, at: int = 0) -> int:
+    def retune(self, owner: int, tables: PartialTables, at: int = 0,
+               correct: tuple[NDArray[np.floating], int] | None = None) -> int:
         """Give every partial of ``owner`` the decay and frequency of its row in ``tables``
         (e.g. a damper falling on a key) from sample ``at`` of the current block on.
         Returns how many.
 
         The state is referred back to the block start under the new factor:
         ``c' = c p_old^at p_new^-at``, so that ``c' p_new^n`` is right for ``n >= at``.
-        Render the samples before ``at`` first.
+        With ``correct = (out, stop)`` (the block already rendered into ``out``), the
+        partials' old samples ``at..stop-1`` are taken out of it and their new ones added.
         """
         k = self.count
         mask = self._keep[:k]
@@ -242,18 +253,20 @@ class OscillatorBank:
             return 0
         slots = np.compress(mask, self._slots[:k], out=self._holes[:h])
         rows = np.compress(mask, self.index[:k], out=self._movers[:h])
+        if correct is not None:
+            self.render_slots(correct[0][at:], slots, at, correct[1], subtract=True)
         if at:
             old = self._moved[1][1]  # lam-shaped scratch
             new = self._scratch
             for lo in range(0, h, self._move_max):
                 hi = min(lo + self._move_max, h)
                 n = hi - lo
-                np.take(self.lam, slots[lo:hi], out=old[:n], mode="clip")
-                np.take(tables.lam, rows[lo:hi], out=new[:n], mode="clip")
+                self.lam.take(slots[lo:hi], out=old[:n], mode="clip")
+                tables.lam.take(rows[lo:hi], out=new[:n], mode="clip")
                 np.subtract(old[:n], new[:n], out=old[:n])
                 np.multiply(old[:n], float(at), out=old[:n])
                 np.exp(old[:n], out=old[:n])
-                np.take(self.state, slots[lo:hi], out=new[:n], mode="clip")
+                self.state.take(slots[lo:hi], out=new[:n], mode="clip")
                 np.multiply(new[:n], old[:n], out=new[:n])
                 self.state[slots[lo:hi]] = new[:n]
         for lo in range(0, h, self._move_max):
@@ -261,8 +274,10 @@ class OscillatorBank:
             n = hi - lo
             for src, dst, (_, buf, axis) in zip((tables.lam, tables.table, tables.steps, tables.powers),
                                                 (self.lam, self._table, self._steps, self._powers),
-                                                (self._moved[1], self._moved[4], self._moved[5], self._moved[6])):
+                                                (self._moved[1], self._moved[4], self._moved[6], self._moved[5])):
                 _gather_scatter(src, rows[lo:hi], dst, slots[lo:hi], buf, axis)
+        if correct is not None:
+            self.render_slots(correct[0][at:], slots, at, correct[1])
         return h
 
     def set_lambda(self, slots: slice, lam: NDArray[np.complex128]) -> None:
@@ -314,6 +329,48 @@ class OscillatorBank:
         skip = start - first * self.split
         out[: stop - start] += acc.reshape(-1)[skip: skip + stop - start]
 
+    def render_slots(self, out: NDArray[np.floating], slots: NDArray[np.int64], start: int, stop: int,
+                     *, subtract: bool = False) -> None:
+        """Add (or subtract) samples ``start..stop-1`` of the current block of some slots
+        only to ``out[:stop - start]``: the correction when an event changes a few
+        partials after the block was rendered whole."""
+        m = len(slots)
+        if not m or start >= stop:
+            return
+        first, last = start // self.split, -(-stop // self.split)
+        rows = last - first
+        acc = self._sum[:rows]
+        acc[:] = 0.0
+        for lo in range(0, m, self.chunk):
+            hi = min(lo + self.chunk, m)
+            k, idx = hi - lo, slots[lo:hi]
+            self.state.take(idx, out=self._g_state[:k], mode="clip")
+            c32 = self._g_c32[:k]
+            np.copyto(c32, self._g_state[:k], casting="same_kind")
+            a = self._rows[: rows * k].reshape(rows, k)
+            step = self._g_step[:k]
+            for j in range(rows):
+                self._steps[first + j].take(idx, out=step, mode="clip")
+                np.multiply(step, c32, out=a[j])
+            table = self._g_table[:k]
+            self._table.take(idx, axis=0, out=table, mode="clip")
+            part = self._part[:rows]
+            np.matmul(a.view(np.float32), table.reshape(2 * k, self.split), out=part)
+            acc += part
+        skip = start - first * self.split
+        seg = acc.reshape(-1)[skip: skip + stop - start]
+        if subtract:
+            out[: stop - start] -= seg
+        else:
+            out[: stop - start] += seg
+
+    def owner_slots(self, owner: int) -> NDArray[np.int64]:
+        """The slots of one owner (a view of a scratch buffer, valid until the next call)."""
+        k = self.count
+        mask = self._keep[:k]
+        np.equal(self.owner[:k], owner, out=mask)
+        return np.compress(mask, self._slots[:k], out=self._picked[: int(np.count_nonzero(mask))])
+
     def advance(self, frames: int) -> None:
         """Move every partial ``frames`` (1..max_block) samples on without rendering."""
         k = self.count
@@ -322,7 +379,7 @@ class OscillatorBank:
         state = self.state[:k]
         for b in range(self._bits):
             if frames >> b & 1:
-                state *= self._powers[b, :k]
+                state *= self._powers[:k, b]
 
     # --- removing partials -------------------------------------------------------
 
@@ -337,8 +394,12 @@ class OscillatorBank:
         np.greater_equal(mag, threshold, out=keep)
         return self._compact(keep)
 
-    def remove_owner(self, owner: int) -> int:
-        """Remove every partial of one owner; returns how many."""
+    def remove_owner(self, owner: int, at: int = 0, correct: tuple[NDArray[np.floating], int] | None = None) -> int:
+        """Remove every partial of one owner from sample ``at`` of the block on; returns
+        how many. With ``correct = (out, stop)``, their samples ``at..stop-1`` are taken
+        out of the already rendered ``out``."""
+        if correct is not None:
+            self.render_slots(correct[0][at:], self.owner_slots(owner), at, correct[1], subtract=True)
         k = self.count
         keep = self._keep[:k]
         np.not_equal(self.owner[:k], owner, out=keep)

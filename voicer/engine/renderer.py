@@ -21,7 +21,7 @@ from __future__ import annotations
 __all__ = ["Renderer", "RenderStats", "HOUSEKEEPING_FRAMES", "DEFAULT_GAIN_DB", "DEFAULT_MAX_VOICES"]
 
 from dataclasses import dataclass
-from typing import Iterable, Sequence
+from typing import Iterable, Iterator, Sequence
 
 import mido
 import numpy as np
@@ -128,6 +128,11 @@ class Renderer:
         self._ab_pressed = False
         self._position = 0  # absolute sample position
         self._housekept = -1  # position of the last housekeeping
+        self._in_block = False  # events are being applied inside a rendered block
+        self._block_n = 0
+        self._flips: list[int] = []
+        self._flips_start = (0, 0)
+        self._carry: tuple[int, mido.Message | str] | None = None
         self._mono = [np.zeros(block) for _ in states]
         self._mix = np.zeros(block)
         self._ramp = np.zeros(block)
@@ -152,7 +157,7 @@ class Renderer:
         at sample ``at`` of the block being rendered (0 between blocks)."""
         if isinstance(message, str):
             if message == "flip":
-                self.flip()
+                self._flip_at(at) if self._in_block else self.flip()
             return
         kind = message.type
         if kind == "note_on":
@@ -164,13 +169,13 @@ class Renderer:
         elif kind == "control_change":
             self._control(message.control, message.value, at)
         elif kind == "program_change" and self.ab_program_change:
-            self.flip()
+            self._flip_at(at) if self._in_block else self.flip()
 
     def _control(self, control: int, value: int, at: int) -> None:
         if control == self.ab_cc:
             pressed = value >= 64
             if pressed and not self._ab_pressed:
-                self.flip()
+                self._flip_at(at) if self._in_block else self.flip()
             self._ab_pressed = pressed
             return
         for v in self.voices:
@@ -209,48 +214,84 @@ class Renderer:
                 for v in self.voices:
                     v.housekeeping(self.cull)
                 self._housekept = self._position
-            self._mix[:n] = 0.0
-            pos = 0
-            while True:
-                while event is not None and min(event[0], frames - 1) - done <= pos:
-                    self.apply(event[1], pos)
-                    event = next(pending, None)
-                if pos >= n:
-                    break
-                stop = n if event is None else min(n, min(event[0], frames - 1) - done)
-                self._segment(pos, stop)
-                pos = stop
-            for bank in self.banks:
-                bank.advance(n)  # close the block: every state moves n samples on
+            self._block(n, pending, event, frames, done)
+            event = self._carry
             self._finish(out, done, n)
             done += n
         while event is not None:  # events given past the end of the block: apply now
             self.apply(event[1])
             event = next(pending, None)
 
-    def _segment(self, lo: int, hi: int) -> None:
-        """Render samples lo..hi of the current block into the mix (states refer to the
-        block start; the banks are advanced when the block is closed)."""
-        n = hi - lo
-        mix = self._mix[lo:hi]
-        if self._fade_left <= 0:
-            self.banks[self.audible].render_segment(mix, lo, hi)
-        else:
-            for s, bank in enumerate(self.banks):
-                buf = self._mono[s][:n]
-                buf[:] = 0.0
-                bank.render_segment(buf, lo, hi)
-            # Linear crossfade toward the audible state, counted in samples.
-            m = min(n, self._fade_left)
-            ramp = self._ramp[:n]
-            self._fill_ramp(ramp, m, 1.0 - self._fade_left / self.crossfade)
-            ramp[m:] = 1.0
-            to, frm = self._mono[self.audible][:n], self._mono[1 - self.audible][:n]
-            np.subtract(to, frm, out=mix)
-            np.multiply(mix, ramp, out=mix)
-            np.add(mix, frm, out=mix)
-            self._fade_left -= m
+    def _block(self, n: int, pending: Iterator[tuple[int, mido.Message | str]],
+               event: tuple[int, mido.Message | str] | None, frames: int, done: int) -> None:
+        """Render one block of n samples, then apply its events as corrections.
+
+        Each bank that is heard renders the whole block at once from its block-start
+        state (one pass over its tables: the costly part); an event at sample ``at`` then
+        only re-renders the partials it changes, from ``at`` to the block end. The mix is
+        made last, following the A/B flips of the block.
+        """
+        self._flips_start = (self.audible, self._fade_left)
+        self._flips = []
+        for s, (bank, voices) in enumerate(zip(self.banks, self.voices)):
+            if s == self.audible or self._fade_left > 0:
+                self._start_rendering(s, 0, n)
+            else:
+                voices.correct = None
+        self._in_block, self._block_n = True, n
+        while event is not None and min(event[0], frames - 1) - done < n:
+            self.apply(event[1], max(min(event[0], frames - 1) - done, 0))
+            event = next(pending, None)
+        self._carry = event
+        self._in_block = False
+        for voices in self.voices:
+            voices.correct = None
+        self._mix_block(n)
+        for bank in self.banks:
+            bank.advance(n)  # close the block: every state moves n samples on
         self._position += n
+
+    def _start_rendering(self, s: int, at: int, n: int) -> None:
+        buf = self._mono[s][:n]
+        buf[:] = 0.0
+        self.banks[s].render_segment(buf[at:], at, n)
+        self.voices[s].correct = (self._mono[s], n)
+
+    def _flip_at(self, at: int) -> None:
+        if len(self.states) < 2:
+            return
+        self._flips.append(at)
+        self.audible = 1 - self.audible
+        self._fade_left = self.crossfade - self._fade_left
+        self.stats.flips += 1
+        if self.voices[self.audible].correct is None:
+            self._start_rendering(self.audible, at, self._block_n)
+
+    def _mix_block(self, n: int) -> None:
+        """The block's mix from the banks' buffers, replaying its flips in order."""
+        audible, left = self._flips_start
+        mix = self._mix[:n]
+        pos = 0
+        for stop in [*self._flips, n]:
+            if stop > pos:
+                seg = mix[pos:stop]
+                to = self._mono[audible][pos:stop]
+                if left <= 0:
+                    seg[:] = to
+                else:
+                    frm = self._mono[1 - audible][pos:stop]
+                    m = min(stop - pos, left)
+                    ramp = self._ramp[: stop - pos]
+                    self._fill_ramp(ramp, m, 1.0 - left / self.crossfade)
+                    ramp[m:] = 1.0
+                    np.subtract(to, frm, out=seg)
+                    np.multiply(seg, ramp, out=seg)
+                    np.add(seg, frm, out=seg)
+                    left -= m
+            if stop < n:
+                audible, left = 1 - audible, self.crossfade - left
+            pos = stop
+        self.audible, self._fade_left = audible, left
 
     def _fill_ramp(self, ramp: NDArray[np.float64], m: int, start: float) -> None:
         step = 1.0 / self.crossfade

@@ -56,6 +56,9 @@ class Voices:
         self.sostenuto = False
         self.una_corda = False
         self.active = 0  # voices not fading
+        # (buffer, stop) when the current block is already rendered into ``buffer``:
+        # every change made at sample ``at`` then corrects samples at..stop-1 of it.
+        self.correct: tuple[np.ndarray, int] | None = None
         self._released: dict[int, None] = {}  # released, not fading voices, oldest first
         self.steals = 0
         self._amp = np.zeros(instrument.max_partials, dtype=np.complex128)
@@ -79,7 +82,7 @@ class Voices:
         while self.active >= self.max_voices:
             self._steal(at=at)
         while not self.free or self.bank.count + n > self.bank.capacity:
-            if not self._drop_fading() and not self._steal(hard=True, at=at):
+            if not self._drop_fading(at) and not self._steal(hard=True, at=at):
                 return  # nothing left to make room with (cannot happen with a sane capacity)
         amp = self._amp[:n]
         if self.una_corda:
@@ -87,7 +90,7 @@ class Voices:
         else:
             amp[:] = data.amplitude[min(velocity, 127)]
         v = self.free.pop()
-        self.bank.add_tables(data.levels[0], amp, owner=v, at=at)
+        self.bank.add_tables(data.levels[0], amp, owner=v, at=at, correct=self.correct)
         self.key_of[v], self.level_of[v], self.fading[v] = key, 0, False
         self.by_key[key].append(v)
         self.active += 1
@@ -173,7 +176,7 @@ class Voices:
         tables = self.inst.keys[key].levels[level]
         for v in voices:
             if self.level_of[v] != level:
-                self.bank.retune(v, tables, at)
+                self.bank.retune(v, tables, at, self.correct)
                 self.level_of[v] = level
 
     def _update_all(self, at: int = 0) -> None:
@@ -185,7 +188,7 @@ class Voices:
         key = self.key_of[v]
         if key < 0 or self.fading[v]:
             return
-        self.bank.retune(v, self.inst.keys[key].fade, at)
+        self.bank.retune(v, self.inst.keys[key].fade, at, self.correct)
         self.by_key[key].remove(v)
         self._released.pop(v, None)
         self.fading[v], self.level_of[v] = True, _FADING
@@ -200,11 +203,11 @@ class Voices:
         self.key_of[v], self.fading[v] = -1, False
         self.free.append(v)
 
-    def _drop_fading(self) -> bool:
+    def _drop_fading(self, at: int = 0) -> bool:
         """Remove one fading voice at once (only when the bank is full)."""
         for v, key in enumerate(self.key_of):
             if key >= 0 and self.fading[v]:
-                self.bank.remove_owner(v)
+                self.bank.remove_owner(v, at, self.correct)
                 self._release_id(v)
                 return True
         return False
@@ -228,7 +231,7 @@ class Voices:
         v = self._victim()
         self.steals += 1
         if hard:
-            self.bank.remove_owner(v)
+            self.bank.remove_owner(v, at, self.correct)
             self._release_id(v)
         else:
             self._fade(v, at)
