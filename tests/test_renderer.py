@@ -366,3 +366,30 @@ def test_callback_allocates_no_arrays_after_warm_up(full_tables) -> None:
     # An array over the sounding partials would take >= count * 8 bytes; Python's own
     # small objects (events, ints) stay far below that.
     assert peak - before < count * 8, (peak - before, count)
+
+
+class HalfGain:
+    """A minimal effect plugin (voicer.effects protocol): halves the signal in place."""
+
+    name = "half"
+    latency_frames = 0
+
+    def prepare(self, sample_rate: float, max_block: int, channels: int) -> None:
+        self.prepared = (sample_rate, max_block, channels)
+
+    def process(self, block: np.ndarray) -> None:
+        block *= 0.5
+
+    def reset(self) -> None:
+        pass
+
+
+def test_effects_process_the_master_signal(tables) -> None:
+    from voicer.engine.host import Effect
+
+    effect = HalfGain()
+    assert isinstance(effect, Effect)  # the protocol, checked at run time
+    effect.prepare(FS, 256, 1)
+    plain = render(make(tables), [(0, on(60))], 4096)
+    halved = render(make(tables, effects=[effect]), [(0, on(60))], 4096)
+    np.testing.assert_allclose(halved, 0.5 * plain, rtol=1e-6, atol=1e-9)
