@@ -201,3 +201,9 @@ def test_clamped_ends_build(demo) -> None:
     # Same blow, slightly different string model: the low partials agree within a few dB.
     diff = levels_db(spectrum(t)[1][:6]) - levels_db(spectrum(pinned)[1][:6])
     assert np.all(np.abs(diff) < 3.0) and t.freq_hz[0] == pytest.approx(pinned.freq_hz[0], rel=1e-4)
+
+
+def test_engine_only_fields_do_not_invalidate_tables(demo) -> None:
+    build_tables(demo, keys=[60])
+    changed = demo.with_key_values(60, {"damper_rate_per_s": 40.0})
+    assert build_tables(changed, keys=[60]).computed == ()

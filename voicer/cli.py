@@ -144,6 +144,19 @@ class _Parser(argparse.ArgumentParser):
         self.exit(EXIT_BAD_INPUT, f"{self.prog}: error: {message} (see {self.prog} --help)\n")
 
 
+def _command(sub: "argparse._SubParsersAction[argparse.ArgumentParser]", name: str, *, help: str,
+             description: str, examples: Sequence[str]) -> argparse.ArgumentParser:
+    """A subcommand whose --help ends with examples."""
+    lead = "example:" if len(examples) == 1 else "examples:"
+    return sub.add_parser(name, help=help, description=description,
+                          formatter_class=argparse.RawDescriptionHelpFormatter,
+                          epilog=lead + "".join(f"\n  {e}" for e in examples))
+
+
+def _add_preset(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("preset", metavar="PRESET", help="preset file, a bundled name, or 'demo'")
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of all commands."""
     parser = _Parser(
@@ -157,24 +170,23 @@ def build_parser() -> argparse.ArgumentParser:
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
 
-    demo = sub.add_parser(
-        "demo", help="render the demo passage on the demo instrument, as it is (A) and voiced (B)",
-        formatter_class=argparse.RawDescriptionHelpFormatter,
+    demo = _command(
+        sub, "demo", help="render the demo passage on the demo instrument, as it is (A) and voiced (B)",
         description="Render the bundled demo passage on the bundled demo instrument in two voicing states\n"
                     "to WAV files (no audio device needed), and play them when an audio device exists.",
-        epilog="examples:\n  voicer demo\n  voicer demo --out-dir /tmp/demo --no-play")
+        examples=["voicer demo", "voicer demo --out-dir /tmp/demo --no-play"])
     demo.add_argument("--out-dir", default="voicer-demo", metavar="DIR", help="where the WAV files go (default voicer-demo)")
     demo.add_argument("--no-play", action="store_true", help="only write the files")
     _audio_options(demo, block=False)
     demo.set_defaults(func=cmd_demo)
 
-    render = sub.add_parser(
-        "render", help="render a MIDI file to WAV/FLAC", formatter_class=argparse.RawDescriptionHelpFormatter,
+    render = _command(
+        sub, "render", help="render a MIDI file to WAV/FLAC",
         description="Render a MIDI file through the predicted piano (with a voicing plan: the voiced piano).",
-        epilog="examples:\n  voicer render demo song.mid -o song.wav\n"
-               "  voicer render demo song.mid -o song-B.flac --voicing presets/voicings/kestrel-190-mellow.toml"
-               " --stats-json stats.json")
-    render.add_argument("preset", metavar="PRESET", help="preset file, a bundled name, or 'demo'")
+        examples=["voicer render demo song.mid -o song.wav",
+                  "voicer render demo song.mid -o song-B.flac --voicing presets/voicings/kestrel-190-mellow.toml"
+                  " --stats-json stats.json"])
+    _add_preset(render)
     render.add_argument("midi", metavar="SONG.mid", help="standard MIDI file")
     render.add_argument("-o", "--output", required=True, metavar="OUT.wav", help="output file (.wav or .flac)")
     render.add_argument("--voicing", metavar="PLAN.toml", help="voicing plan to apply before rendering")
@@ -185,15 +197,14 @@ def build_parser() -> argparse.ArgumentParser:
     _audio_options(render)
     render.set_defaults(func=cmd_render)
 
-    play = sub.add_parser(
-        "play", help="play live from MIDI (or the computer keyboard) with A/B switching",
-        formatter_class=argparse.RawDescriptionHelpFormatter,
+    play = _command(
+        sub, "play", help="play live from MIDI (or the computer keyboard) with A/B switching",
         description="Play the predicted piano live. With --voicing, state A is the preset and state B the\n"
                     "voiced preset; flip between them with the space bar, --ab-cc or a program change.",
-        epilog="examples:\n  voicer play demo\n"
-               "  voicer play demo --voicing presets/voicings/kestrel-190-mellow.toml --midi-in 1 --ab-cc 80\n"
-               "  voicer play demo --midi-file presets/midi/demo-passage.mid --device pulse --block 128")
-    play.add_argument("preset", metavar="PRESET", help="preset file, a bundled name, or 'demo'")
+        examples=["voicer play demo",
+                  "voicer play demo --voicing presets/voicings/kestrel-190-mellow.toml --midi-in 1 --ab-cc 80",
+                  "voicer play demo --midi-file presets/midi/demo-passage.mid --device pulse --block 128"])
+    _add_preset(play)
     play.add_argument("--voicing", metavar="PLAN.toml", help="voicing plan for state B")
     play.add_argument("--midi-in", metavar="PORT", help="MIDI input by name, part of a name, or number")
     play.add_argument("--midi-file", metavar="SONG.mid", help="play a MIDI file in real time instead of a port")
@@ -205,39 +216,35 @@ def build_parser() -> argparse.ArgumentParser:
     _audio_options(play)
     play.set_defaults(func=cmd_play)
 
-    devices = sub.add_parser("devices", help="list audio outputs and MIDI inputs",
-                             formatter_class=argparse.RawDescriptionHelpFormatter,
-                             description="List the audio output devices and MIDI input ports voicer can use.",
-                             epilog="example:\n  voicer devices")
+    devices = _command(sub, "devices", help="list audio outputs and MIDI inputs",
+                       description="List the audio output devices and MIDI input ports voicer can use.",
+                       examples=["voicer devices"])
     devices.set_defaults(func=cmd_devices)
 
-    plugins = sub.add_parser("plugins", help="list the plugins found (models, effects, sinks, sources)",
-                             formatter_class=argparse.RawDescriptionHelpFormatter,
-                             description="List every plugin registered under voicer's entry-point groups;\n"
-                                         "a broken plugin is shown with its reason.",
-                             epilog="example:\n  voicer plugins")
+    plugins = _command(sub, "plugins", help="list the plugins found (models, effects, sinks, sources)",
+                       description="List every plugin registered under voicer's entry-point groups;\n"
+                                   "a broken plugin is shown with its reason.",
+                       examples=["voicer plugins"])
     plugins.set_defaults(func=cmd_plugins)
 
-    scale = sub.add_parser(
-        "scale", help="per-key table of a preset: f0, length, tension, B, unison, partials",
-        formatter_class=argparse.RawDescriptionHelpFormatter,
+    scale = _command(
+        sub, "scale", help="per-key table of a preset: f0, length, tension, B, unison, partials",
         description="Print what the model believes about every key of a piano preset.",
-        epilog="examples:\n  voicer scale presets/pianos/kestrel-190.toml\n  voicer scale demo --json")
-    scale.add_argument("preset", metavar="PRESET", help="preset file, a bundled name, or 'demo'")
+        examples=["voicer scale presets/pianos/kestrel-190.toml", "voicer scale demo --json"])
+    _add_preset(scale)
     scale.add_argument("--json", action="store_true", help="print JSON (schema in the README)")
     scale.add_argument("--partials", type=_positive_int, default=JSON_PARTIALS, metavar="N",
                        help=f"partial frequencies listed per key in JSON (default {JSON_PARTIALS})")
     scale.set_defaults(func=_cmd_scale)
 
-    inspect = sub.add_parser(
-        "inspect", help="the predicted blow of one key: contact, peak force, partials",
-        formatter_class=argparse.RawDescriptionHelpFormatter,
+    inspect = _command(
+        sub, "inspect", help="the predicted blow of one key: contact, peak force, partials",
         description="Simulate one key struck at one MIDI velocity and show the hammer contact and the\n"
                     "partials it excites (level of the bridge force, deviation from harmonic, decay).",
-        epilog="examples:\n  voicer inspect demo --key 40 --velocity 90\n"
-               "  voicer inspect demo --key 60 --velocity 64 --set felt_force_1mm_n=110 --plot c4.png\n"
-               "  voicer inspect demo --key 60 --velocity 64 --json")
-    inspect.add_argument("preset", metavar="PRESET", help="preset file, a bundled name, or 'demo'")
+        examples=["voicer inspect demo --key 40 --velocity 90",
+                  "voicer inspect demo --key 60 --velocity 64 --set felt_force_1mm_n=110 --plot c4.png",
+                  "voicer inspect demo --key 60 --velocity 64 --json"])
+    _add_preset(inspect)
     inspect.add_argument("--key", type=_ranged_int(21, 108, "key"), required=True, help="MIDI key 21..108")
     inspect.add_argument("--velocity", type=_ranged_int(1, 127, "velocity"), default=64, help="MIDI velocity 1..127")
     inspect.add_argument("--set", action="append", metavar="FIELD=VALUE", default=[],

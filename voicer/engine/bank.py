@@ -128,10 +128,6 @@ class OscillatorBank:
         self._part = np.zeros((rows, split), dtype=np.float32)
         self._sum = np.zeros((rows, split), dtype=np.float64)
         self._scratch = np.zeros(capacity, dtype=np.complex128)
-        self._tab_scratch = np.zeros((capacity, split), dtype=np.complex128)
-        self._row_scratch = np.zeros((capacity, rows), dtype=np.complex128)
-        self._i = np.arange(split, dtype=np.float64)
-        self._j = np.arange(rows, dtype=np.float64) * split
         self._mag = np.zeros(capacity, dtype=np.float64)
         self._keep = np.zeros(capacity, dtype=bool)
         self._hole_mask = np.zeros(capacity, dtype=bool)
@@ -152,26 +148,18 @@ class OscillatorBank:
     # --- adding and changing partials ------------------------------------------------
 
     def _fill_tables(self, lo: int, hi: int) -> None:
-        """Recompute the power tables of slots lo..hi-1 from their lambda."""
-        lam = self.lam[lo:hi, None]
-        tab = self._tab_scratch[: hi - lo]
-        np.multiply(lam, self._i[None, :], out=tab)
-        np.exp(tab, out=tab)
-        self._table[lo:hi, 0] = tab.real
-        np.negative(tab.imag, out=self._table[lo:hi, 1])
-        rows = self._row_scratch[: hi - lo]
-        np.multiply(lam, self._j[None, :], out=rows)
-        np.exp(rows, out=rows)
-        self._steps[:, lo:hi] = rows.T
-        adv = self._scratch[: hi - lo]
-        for b in range(self._bits):
-            np.multiply(self.lam[lo:hi], float(1 << b), out=adv)
-            np.exp(adv, out=self._powers[lo:hi, b])
+        """Recompute the power tables of slots lo..hi-1 from their lambda (allocates: the
+        audio thread adds precomputed tables with :meth:`add_tables` instead)."""
+        tables = partial_tables(self.lam[lo:hi], split=self.split, max_block=self.max_block)
+        self._table[lo:hi] = tables.table
+        self._steps[:, lo:hi] = tables.steps
+        self._powers[lo:hi] = tables.powers
 
     def add(self, lam: NDArray[np.complex128], amplitude: NDArray[np.complex128], owner: int,
             index: NDArray[np.int64] | None = None) -> int:
-        """Add partials; returns the first slot used (they occupy ``n`` consecutive slots
-        until partials are removed).
+        """Add partials, computing their tables (allocates; see :meth:`add_tables`);
+        returns the first slot used (they occupy ``n`` consecutive slots until partials
+        are removed).
 
         Parameters
         ----------

@@ -132,7 +132,6 @@ class Renderer:
         self._block_n = 0
         self._flips: list[int] = []
         self._flips_start = (0, 0)
-        self._carry: tuple[int, mido.Message | str] | None = None
         self._mono = [np.zeros(block) for _ in states]
         self._mix = np.zeros(block)
         self._ramp = np.zeros(block)
@@ -214,8 +213,7 @@ class Renderer:
                 for v in self.voices:
                     v.housekeeping(self.cull)
                 self._housekept = self._position
-            self._block(n, pending, event, frames, done)
-            event = self._carry
+            event = self._block(n, pending, event, frames, done)
             self._finish(out, done, n)
             done += n
         while event is not None:  # events given past the end of the block: apply now
@@ -223,13 +221,15 @@ class Renderer:
             event = next(pending, None)
 
     def _block(self, n: int, pending: Iterator[tuple[int, mido.Message | str]],
-               event: tuple[int, mido.Message | str] | None, frames: int, done: int) -> None:
+               event: tuple[int, mido.Message | str] | None, frames: int,
+               done: int) -> tuple[int, mido.Message | str] | None:
         """Render one block of n samples, then apply its events as corrections.
 
         Each bank that is heard renders the whole block at once from its block-start
         state (one pass over its tables: the costly part); an event at sample ``at`` then
         only re-renders the partials it changes, from ``at`` to the block end. The mix is
-        made last, following the A/B flips of the block.
+        made last, following the A/B flips of the block. Returns the first event of a
+        later block.
         """
         self._flips_start = (self.audible, self._fade_left)
         self._flips = []
@@ -242,7 +242,6 @@ class Renderer:
         while event is not None and min(event[0], frames - 1) - done < n:
             self.apply(event[1], max(min(event[0], frames - 1) - done, 0))
             event = next(pending, None)
-        self._carry = event
         self._in_block = False
         for voices in self.voices:
             voices.correct = None
@@ -250,6 +249,7 @@ class Renderer:
         for bank in self.banks:
             bank.advance(n)  # close the block: every state moves n samples on
         self._position += n
+        return event
 
     def _start_rendering(self, s: int, at: int, n: int) -> None:
         buf = self._mono[s][:n]

@@ -14,6 +14,7 @@ __all__ = [
     "KEY_PARAM_BY_NAME",
     "INSTRUMENT_PARAM_BY_NAME",
     "WINDING_FIELDS",
+    "ENGINE_ONLY_FIELDS",
     "fields_markdown",
 ]
 
@@ -158,6 +159,9 @@ KEY_PARAMS: tuple[Param, ...] = (
     Param("loss_b3_s", "float", "s", "decay-rate coefficient b3 of omega^2 (Chaigne & Askenfelt 1994)",
           lo=0.0, hi=1.0e-6, lo_open=True, interp="log"),
 )
+
+#: Fields the engine reads but the modal tables do not depend on (left out of their cache key).
+ENGINE_ONLY_FIELDS = frozenset({"damper_rate_per_s"})
 
 #: The two ways of giving a string's winding; at most one per preset.
 WINDING_FIELDS = ("winding_diameter_mm", "winding_mass_g_per_m")

@@ -38,11 +38,12 @@ from ..physics.strings import DEFAULT_MAX_PARTIALS, DEFAULT_SAMPLE_RATE_HZ, brid
 from ..physics.tuning import key_name
 from .cache import digest, load_entry, store_entry
 from .interp import pchip
+from .params import ENGINE_ONLY_FIELDS
 from .preset import Preset
 from .velocity import DEFAULT_LAYERS, DEFAULT_MAX_SPEED_M_S, DEFAULT_MIN_SPEED_M_S, hammer_speed, layer_speeds
 
 #: Bumped whenever the model changes what a table contains, so old cache entries miss.
-TABLE_MODEL_VERSION = 3
+TABLE_MODEL_VERSION = 4
 
 _MAX_ROWS = 768  # string rows per batch: large enough to amortise the per-step overhead
 _PAD_RATIO = 0.7  # a batch holds keys with at least this fraction of its largest mode count
@@ -289,7 +290,8 @@ def _key_digest(preset: Preset, key: int, settings: TableSettings) -> str:
     inputs = {
         "model": TABLE_MODEL_VERSION,
         "key": key,
-        "values": {name: float(values[i]) for name, values in preset.resolved.items()},
+        "values": {name: float(values[i]) for name, values in preset.resolved.items()
+                   if name not in ENGINE_ONLY_FIELDS},
         "instrument": {name: preset.instrument[name] for name in ("a4_hz", "end_condition", "felt_law")},
         "settings": asdict(settings),
     }
