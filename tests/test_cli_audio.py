@@ -351,7 +351,8 @@ def runs(tmp_path_factory, cache, midi) -> dict[str, Result]:
         {"play_ab": (null, "play", "demo", "--midi-file", midi["ab"], "--seconds", seconds, "--block", "256",
                      "--voicing", MELLOW),
          "play_128": (null, "play", "demo", "--midi-file", midi["short"], "--seconds", seconds, "--block", "128"),
-         "seconds_nan": (null, "play", "demo", "--midi-file", midi["short"], "--seconds", "nan")},
+         "seconds_nan": (null, "play", "demo", "--midi-file", midi["short"], "--seconds", "nan"),
+         "midi_virtual": (null, "play", "demo", "--midi-virtual", "--seconds", seconds)},
     ]
     results = {}
     for batch in batches:
@@ -437,6 +438,18 @@ def test_play_unknown_midi_input_is_one_line(runs, midi_in_line) -> None:
         "bad input must give one line on stderr (voicer/cli.py), but `voicer play --midi-in nosuchport` "
         f"printed {runs['midi_in'].stderr!r} (without libasound's own 'ALSA lib' lines: {runs['midi_in'].lines!r}); "
         "the empty line comes from the unconditional print(file=sys.stderr) in cmd_play's finally block")
+
+
+def test_play_virtual_midi_input(runs) -> None:
+    """A virtual MIDI input goes through python-rtmidi; without the ALSA sequencer (this
+    machine) that is one clear line, exit 2."""
+    result = runs["midi_virtual"]
+    result.check_portaudio()
+    if Path("/dev/snd/seq").exists():
+        assert result.returncode == 0, result.stderr
+    else:
+        assert result.returncode == 2 and len([line for line in result.lines if line]) == 1, result.stderr
+        assert "MIDI ports are unavailable" in result.stderr
 
 
 def test_play_refuses_seconds_nan(runs) -> None:

@@ -20,9 +20,7 @@ from . import __version__
 from .errors import VoicerError
 from .report.scale_table import JSON_PARTIALS, format_scale_table, scale_report
 from .resources import find_preset
-from .cli_audio import cmd_demo, cmd_devices, cmd_play, cmd_plugins, cmd_render
-from .engine.renderer import DEFAULT_GAIN_DB
-from .engine.session import DEFAULT_SAMPLE_RATE
+from .engine.defaults import DEFAULT_GAIN_DB, DEFAULT_SAMPLE_RATE
 from .report.inspect import DEFAULT_PARTIALS, format_inspect, inspect_key
 from .tone.params import KEY_PARAM_BY_NAME
 from .tone.preset import Preset, load_preset
@@ -144,6 +142,16 @@ class _Parser(argparse.ArgumentParser):
         self.exit(EXIT_BAD_INPUT, f"{self.prog}: error: {message} (see {self.prog} --help)\n")
 
 
+def _audio(name: str) -> Callable[[argparse.Namespace], int]:
+    """A sound command, imported when run (the engine is not needed by `scale` or `inspect`)."""
+    def run(args: argparse.Namespace) -> int:
+        from . import cli_audio
+
+        return getattr(cli_audio, name)(args)
+
+    return run
+
+
 def _command(sub: "argparse._SubParsersAction[argparse.ArgumentParser]", name: str, *, help: str,
              description: str, examples: Sequence[str]) -> argparse.ArgumentParser:
     """A subcommand whose --help ends with examples."""
@@ -178,7 +186,7 @@ def build_parser() -> argparse.ArgumentParser:
     demo.add_argument("--out-dir", default="voicer-demo", metavar="DIR", help="where the WAV files go (default voicer-demo)")
     demo.add_argument("--no-play", action="store_true", help="only write the files")
     _audio_options(demo, block=False)
-    demo.set_defaults(func=cmd_demo)
+    demo.set_defaults(func=_audio("cmd_demo"))
 
     render = _command(
         sub, "render", help="render a MIDI file to WAV/FLAC",
@@ -195,7 +203,7 @@ def build_parser() -> argparse.ArgumentParser:
     render.add_argument("--subtype", metavar="NAME", help="sample format, e.g. PCM_16, PCM_24 (default), FLOAT")
     render.add_argument("--stats-json", metavar="FILE", help="write the render's figures as JSON (see the README)")
     _audio_options(render)
-    render.set_defaults(func=cmd_render)
+    render.set_defaults(func=_audio("cmd_render"))
 
     play = _command(
         sub, "play", help="play live from MIDI (or the computer keyboard) with A/B switching",
@@ -207,6 +215,8 @@ def build_parser() -> argparse.ArgumentParser:
     _add_preset(play)
     play.add_argument("--voicing", metavar="PLAN.toml", help="voicing plan for state B")
     play.add_argument("--midi-in", metavar="PORT", help="MIDI input by name, part of a name, or number")
+    play.add_argument("--midi-virtual", action="store_true",
+                      help="open a virtual MIDI input (named by --midi-in, default 'voicer') for other programs")
     play.add_argument("--midi-file", metavar="SONG.mid", help="play a MIDI file in real time instead of a port")
     play.add_argument("--device", metavar="NAME", help="audio output by name, part of a name, or number")
     play.add_argument("--latency", type=_latency, default="high", help="'high', 'low' or seconds (default high)")
@@ -214,18 +224,18 @@ def build_parser() -> argparse.ArgumentParser:
                       help="MIDI controller whose press flips A/B")
     play.add_argument("--seconds", type=_seconds(zero_ok=False), metavar="S", help="stop after S seconds")
     _audio_options(play)
-    play.set_defaults(func=cmd_play)
+    play.set_defaults(func=_audio("cmd_play"))
 
     devices = _command(sub, "devices", help="list audio outputs and MIDI inputs",
                        description="List the audio output devices and MIDI input ports voicer can use.",
                        examples=["voicer devices"])
-    devices.set_defaults(func=cmd_devices)
+    devices.set_defaults(func=_audio("cmd_devices"))
 
     plugins = _command(sub, "plugins", help="list the plugins found (models, effects, sinks, sources)",
                        description="List every plugin registered under voicer's entry-point groups;\n"
                                    "a broken plugin is shown with its reason.",
                        examples=["voicer plugins"])
-    plugins.set_defaults(func=cmd_plugins)
+    plugins.set_defaults(func=_audio("cmd_plugins"))
 
     scale = _command(
         sub, "scale", help="per-key table of a preset: f0, length, tension, B, unison, partials",

@@ -120,8 +120,8 @@ def _play(args: argparse.Namespace) -> int:
     if args.midi_file:
         MidiFileSource(args.midi_file)  # fail early on a bad file
         feeder = threading.Thread(target=_feed_file, args=(args.midi_file, live, stop), daemon=True)
-    elif args.midi_in is not None or not sys.stdin.isatty():
-        source = MidiPortSource(args.midi_in)
+    elif args.midi_in is not None or args.midi_virtual or not sys.stdin.isatty():
+        source = MidiPortSource(args.midi_in, virtual=args.midi_virtual)
     sink = PortAudioSink(args.device, latency=args.latency)
     sink.open(sample_rate=args.sample_rate, channels=CHANNELS, block=args.block,
               callback=lambda out: renderer.process(out, live.drain(out.shape[1])))

@@ -29,6 +29,7 @@ from numpy.typing import NDArray
 
 from ..errors import ParameterError
 from .bank import OscillatorBank
+from .defaults import DEFAULT_CULL_DBFS, DEFAULT_GAIN_DB, DEFAULT_MAX_VOICES
 from .host import Effect
 from .instrument import Instrument
 from .safety import DEFAULT_CEILING_DBFS, SafetyStage
@@ -37,11 +38,6 @@ from .voices import Voices
 #: Culling and freeing voices happens at every multiple of this many samples (absolute
 #: positions, so that it does not depend on the block size).
 HOUSEKEEPING_FRAMES = 2048
-#: Bridge force (newtons) to full scale: a forte chord of the demo peaks near -6 dBFS.
-DEFAULT_GAIN_DB = -50.0
-DEFAULT_MAX_VOICES = 96
-#: Partials below this level re full scale are dropped.
-DEFAULT_CULL_DBFS = -100.0
 
 # MIDI controller numbers (MIDI 1.0 Detailed Specification, control change table).
 CC_SUSTAIN, CC_SOSTENUTO, CC_UNA_CORDA, CC_ALL_SOUND_OFF, CC_ALL_NOTES_OFF = 64, 66, 67, 120, 123

@@ -10,10 +10,10 @@ from ..tone.preset import Preset
 from ..tone.tables import TableSettings
 from ..tone.voicing import apply_voicing, load_voicing
 from .bank import DEFAULT_SPLIT
+from .defaults import DEFAULT_SAMPLE_RATE
 from .host import load_plugin
 from .instrument import Instrument
 
-DEFAULT_SAMPLE_RATE = 48_000
 SPLIT = DEFAULT_SPLIT
 
 
