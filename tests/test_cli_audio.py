@@ -347,12 +347,13 @@ def runs(tmp_path_factory, cache, midi) -> dict[str, Result]:
         {"play": (null, "play", "demo", "--midi-file", midi["short"], "--seconds", seconds, "--block", "256"),
          "no_device": (none, "play", "demo", "--seconds", seconds),
          "midi_in": (null, "play", "demo", "--midi-in", "nosuchport", "--seconds", seconds),
-         "devices": (null, "devices")},
+         "devices": (null, "devices"),
+         # Not in the next batch: that one times the refusal of --seconds nan.
+         "midi_virtual": (null, "play", "demo", "--midi-virtual", "--seconds", seconds)},
         {"play_ab": (null, "play", "demo", "--midi-file", midi["ab"], "--seconds", seconds, "--block", "256",
                      "--voicing", MELLOW),
          "play_128": (null, "play", "demo", "--midi-file", midi["short"], "--seconds", seconds, "--block", "128"),
-         "seconds_nan": (null, "play", "demo", "--midi-file", midi["short"], "--seconds", "nan"),
-         "midi_virtual": (null, "play", "demo", "--midi-virtual", "--seconds", seconds)},
+         "seconds_nan": (null, "play", "demo", "--midi-file", midi["short"], "--seconds", "nan")},
     ]
     results = {}
     for batch in batches:
