@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from voicer.engine.bank import OscillatorBank
+from voicer.engine.bank import OscillatorBank, partial_tables
 from voicer.errors import ParameterError
 
 FS = 48_000.0
@@ -112,8 +112,41 @@ def test_changing_decay_mid_way(rng) -> None:
     bank.add(lam, amp, owner=0)
     first = render(bank, 1000, 256)
     damped = lam - 50.0 / FS  # a damper adds 50 1/s of decay
-    bank.set_lambda(slice(0, 20), damped)
+    bank.retune(0, partial_tables(damped, split=bank.split, max_block=256))
     second = render(bank, 1000, 256)
     ref2 = np.real(np.exp(np.outer(np.arange(1000), damped)) @ (amp * np.exp(lam * 1000)))
     np.testing.assert_allclose(first, exact(lam, amp, 0, 1000), atol=1e-5)
     np.testing.assert_allclose(second, ref2, atol=1e-5)
+
+
+def test_retune_and_add_inside_a_block_with_corrections(rng) -> None:
+    """An event at sample ``at`` of a block already rendered whole: the corrected block
+    equals rendering the two segments around the event with the change in between."""
+    lam, amp = random_partials(rng, 30)
+    damped = lam - 80.0 / FS
+    new_lam, new_amp = random_partials(rng, 10)
+    at = 101
+    # Reference: render 0..at, change, render at..256 (states advanced in between).
+    ref_bank = OscillatorBank(64, max_block=256)
+    ref_bank.add(lam, amp, owner=0)
+    ref = np.zeros(256)
+    ref_bank.render(ref, at)
+    ref_bank.retune(0, partial_tables(damped, split=ref_bank.split, max_block=256))
+    ref_bank.add(new_lam, new_amp, owner=1)
+    ref_bank.render(ref[at:], 256 - at)
+    # One pass over the block, then corrections from ``at`` on.
+    bank = OscillatorBank(64, max_block=256)
+    bank.add(lam, amp, owner=0)
+    out = np.zeros(256)
+    bank.render_segment(out, 0, 256)
+    bank.retune(0, partial_tables(damped, split=bank.split, max_block=256), at, correct=(out, 256))
+    # new_amp is the amplitude at sample ``at``; add_tables refers it back to the block start.
+    bank.add_tables(partial_tables(new_lam, split=bank.split, max_block=256), new_amp, owner=1,
+                    at=at, correct=(out, 256))
+    bank.advance(256)
+    np.testing.assert_allclose(out, ref, atol=1e-5 * np.abs(ref).max())
+    # And the states go on alike.
+    a, b = np.zeros(256), np.zeros(256)
+    ref_bank.render(a, 256)
+    bank.render(b, 256)
+    np.testing.assert_allclose(b, a, atol=1e-5 * np.abs(a).max())

@@ -268,11 +268,6 @@ class OscillatorBank:
             self.render_slots(correct[0][at:], slots, at, correct[1])
         return h
 
-    def set_lambda(self, slots: slice, lam: NDArray[np.complex128]) -> None:
-        """Change the decay and frequency of a run of slots from the next sample on."""
-        self.lam[slots] = lam
-        self._fill_tables(slots.start, slots.stop)
-
     # --- rendering ---------------------------------------------------------------
 
     def render(self, out: NDArray[np.floating], frames: int) -> None:
@@ -414,9 +409,3 @@ class OscillatorBank:
     def _copy_slots(self, src: NDArray[np.int64], dst: NDArray[np.int64]) -> None:
         for arr, buf, axis in self._moved:
             _gather_scatter(arr, src, arr, dst, buf, axis)
-
-    def clear(self) -> None:
-        """Remove every partial."""
-        self.state[: self.count] = 0.0
-        self.owner[: self.count] = -1
-        self.count = 0

@@ -89,11 +89,6 @@ class Preset:
         except PresetError as exc:
             raise PresetError(exc.reason, file=self.source, key=exc.key, field=exc.field) from None
 
-    @property
-    def wound_keys(self) -> range:
-        """Keys with wound strings."""
-        return range(LOWEST_KEY, self.instrument["last_wound_key"] + 1)
-
     def with_key_values(self, key: int, values: Mapping[str, Any]) -> "Preset":
         """A copy with per-key overrides for one key, validated like the file.
 
