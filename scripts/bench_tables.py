@@ -67,7 +67,7 @@ def main() -> None:
 
     print(f"one key, {settings.layers} layers (target < 50 ms):")
     for key in (21, 33, 45, 46, 60, 72, 84, 96, 108):
-        t = min(timed(lambda: build_tables(preset, keys=[key], use_cache=False))[1] for _ in range(3))
+        t = min(timed(lambda k=key: build_tables(preset, keys=[k], use_cache=False))[1] for _ in range(3))
         print(f"  key {key:3d}: {t * 1e3:6.1f} ms")
 
     with tempfile.TemporaryDirectory() as folder:

@@ -229,7 +229,7 @@ class Renderer:
         """
         self._flips_start = (self.audible, self._fade_left)
         self._flips = []
-        for s, (bank, voices) in enumerate(zip(self.banks, self.voices)):
+        for s, voices in enumerate(self.voices):
             if s == self.audible or self._fade_left > 0:
                 self._start_rendering(s, 0, n)
             else:
