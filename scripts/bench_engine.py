@@ -4,8 +4,9 @@ Prints, measured in this one run, for blocks of 64, 128 and 256 samples:
 * partial-samples per second of the full renderer (voices, pedal changes, note-ons,
   the safety stage: Renderer.process as the audio callback runs it) with a full-pedal
   texture of many voices;
-* the same for the bare kernel (OscillatorBank.render on the same partials) and for a
-  plain numpy float32 matrix product of the kernel's shape, and the ratios;
+* the same for the bare kernel (OscillatorBank.render on a copy of the same partials,
+  timed block by block in turn with the renderer so that machine noise hits both) and
+  for a plain numpy float32 matrix product of the kernel's shape, and the ratios;
 * how many partials fit in half of one core at 48 kHz (from the renderer's figure);
 and the note-on latency inside the renderer and through the live input.
 
@@ -56,70 +57,83 @@ def texture(renderer: Renderer, block: int, strikes: int) -> None:
 
 
 def time_renderer(renderer: Renderer, block: int) -> tuple[float, float]:
-    """Seconds per block and mean partials, with a pedal change and a note (struck and
-    released under the pedal) every 8 blocks."""
+    """Seconds per block and mean partials of the renderer alone, with a pedal change and
+    a note (struck and released under the pedal) every 8 blocks."""
     out = np.zeros((2, block), dtype=np.float32)
     blocks = int(SECONDS * FS / block)
     partials = 0
     t0 = time.perf_counter()
     for i in range(blocks):
-        events = []
-        if i % 8 == 0:
-            events = [(block // 3, mido.Message("control_change", control=64, value=100 + i % 27)),
-                      (block // 2, mido.Message("note_on", note=60 + i % 12, velocity=70)),
-                      (block - 1, mido.Message("note_off", note=60 + i % 12))]
-        renderer.process(out, events)
+        renderer.process(out, _events(i, block))
         partials += renderer.banks[renderer.audible].count
     return (time.perf_counter() - t0) / blocks, partials / blocks
 
 
-def time_kernel(count: int, block: int) -> float:
-    rng = np.random.default_rng(1)
-    lam = (-rng.uniform(0.1, 5, count) + 2j * np.pi * rng.uniform(30, 15000, count)) / FS
-    bank = OscillatorBank(count, max_block=block)
-    bank.add(lam, rng.normal(size=count) + 0j, owner=0)
-    out = np.zeros(block)
+def _events(i: int, block: int) -> list[tuple[int, mido.Message]]:
+    if i % 8:
+        return []
+    return [(block // 3, mido.Message("control_change", control=64, value=100 + i % 27)),
+            (block // 2, mido.Message("note_on", note=60 + i % 12, velocity=70)),
+            (block - 1, mido.Message("note_off", note=60 + i % 12))]
+
+
+def time_interleaved(renderer: Renderer, block: int) -> tuple[float, float, float]:
+    """Renderer, bare kernel and plain product timed block by block in turn, so that the
+    shared machine's noise (and the caches they share) hit all three alike. The kernel
+    bank holds a copy of the renderer's partials at the start. Returns seconds per block
+    of each and the mean partial count."""
+    src = renderer.banks[renderer.audible]
+    k = src.count
+    kernel = OscillatorBank(k, max_block=block, split=src.split)
+    kernel.add(src.lam[:k].copy(), src.state[:k].copy(), owner=0)
+    out = np.zeros((2, block), dtype=np.float32)
+    kout = np.zeros(block)
+    rows = block // src.split
+    a = np.ones((rows, 2 * k), dtype=np.float32)
+    b = np.ones((2 * k, src.split), dtype=np.float32)
+    c = np.zeros((rows, src.split), dtype=np.float32)
     blocks = int(SECONDS * FS / block)
-    t0 = time.perf_counter()
-    for _ in range(blocks):
-        bank.render(out, block)
-    return (time.perf_counter() - t0) / blocks
-
-
-def time_matmul(count: int, block: int) -> float:
-    rows = block // DEFAULT_SPLIT
-    a = np.ones((rows, 2 * count), dtype=np.float32)
-    b = np.ones((2 * count, DEFAULT_SPLIT), dtype=np.float32)
-    c = np.zeros((rows, DEFAULT_SPLIT), dtype=np.float32)
-    n = int(SECONDS * FS / block)
-    t0 = time.perf_counter()
-    for _ in range(n):
+    t_render = t_kernel = t_matmul = 0.0
+    partials = 0
+    for i in range(blocks):
+        t0 = time.perf_counter()
+        renderer.process(out, _events(i, block))
+        t1 = time.perf_counter()
+        kernel.render(kout, block)
+        t2 = time.perf_counter()
         np.matmul(a, b, out=c)
-    return (time.perf_counter() - t0) / n
+        t3 = time.perf_counter()
+        t_render += t1 - t0
+        t_kernel += t2 - t1
+        t_matmul += t3 - t2
+        partials += src.count
+    # Per block at the renderer's mean partial count (kernel and product hold k).
+    scale = partials / (blocks * k)
+    return t_render / blocks, t_kernel / blocks * scale, t_matmul / blocks * scale, partials / blocks
 
 
 def main() -> None:
     preset = load_preset(find_preset("demo"))
     tables = build_tables(preset)
+    print("renderer G/s and capacity: the renderer alone; kernel, matmul and ratios: the three timed in turn")
     print(f"{'block':>5} {'partials':>8} {'renderer G/s':>12} {'kernel G/s':>10} {'matmul G/s':>10} "
           f"{'rend/kern':>9} {'kern/matmul':>11} {'partials in half a core':>24}")
     for block in (64, 128, 256):
         inst = Instrument(tables, sample_rate=FS, max_block=block, split=DEFAULT_SPLIT)
-        runs = []
+        alone, paired = [], []
         for _ in range(REPEATS):  # best of a few: the shared machine is noisy
-            # Keep every partial (no culling) so that the texture is dense, as with
-            # coupled unisons and sympathetic strings to come.
-            renderer = Renderer([inst], cull_dbfs=-400.0, max_voices=VOICES, capacity=CAPACITY)
-            texture(renderer, block, STRIKES)
-            runs.append(time_renderer(renderer, block))
-        per_block, partials = min(runs)
-        k = int(partials)
-        kern = min(time_kernel(k, block) for _ in range(REPEATS))
-        mm = min(time_matmul(k, block) for _ in range(REPEATS))
+            for runs, timer in ((alone, time_renderer), (paired, time_interleaved)):
+                # Keep every partial (no culling) so that the texture is dense, as with
+                # coupled unisons and sympathetic strings to come.
+                renderer = Renderer([inst], cull_dbfs=-400.0, max_voices=VOICES, capacity=CAPACITY)
+                texture(renderer, block, STRIKES)
+                runs.append(timer(renderer, block))
+        per_block, partials = min(alone)
+        r_paired, kern, mm, k_partials = min(paired)
         rate = partials * block / per_block
         half_core = 0.5 * rate / FS
-        print(f"{block:5d} {k:8d} {rate / 1e9:12.2f} {k * block / kern / 1e9:10.2f} {k * block / mm / 1e9:10.2f} "
-              f"{kern / per_block:9.2f} {mm / kern:11.2f} {half_core:24.0f}")
+        print(f"{block:5d} {int(partials):8d} {rate / 1e9:12.2f} {k_partials * block / kern / 1e9:10.2f} "
+              f"{k_partials * block / mm / 1e9:10.2f} {kern / r_paired:9.2f} {mm / kern:11.2f} {half_core:24.0f}")
 
     inst = Instrument(tables, sample_rate=FS, max_block=256, split=DEFAULT_SPLIT)
     renderer = Renderer([inst])

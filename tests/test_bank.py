@@ -150,3 +150,17 @@ def test_retune_and_add_inside_a_block_with_corrections(rng) -> None:
     ref_bank.render(a, 256)
     bank.render(b, 256)
     np.testing.assert_allclose(b, a, atol=1e-5 * np.abs(a).max())
+
+
+def test_owner_counts_follow_adds_culls_and_removals(rng) -> None:
+    bank = OscillatorBank(200, owners=4)
+    lam, amp = random_partials(rng, 30)
+    amp[:10] *= 1e-9
+    bank.add(lam, amp, owner=1)
+    bank.add(lam, np.ones(30) + 0j, owner=2)
+    assert bank.owner_counts.tolist() == [0, 30, 30, 0]
+    bank.cull(1e-5)
+    assert bank.owner_counts.tolist() == [0, 20, 30, 0]
+    bank.remove_owner(2)
+    assert bank.owner_counts.tolist() == [0, 20, 0, 0]
+    np.testing.assert_array_equal(np.bincount(bank.owner[: bank.count], minlength=4), bank.owner_counts)

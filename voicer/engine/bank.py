@@ -103,10 +103,12 @@ class OscillatorBank:
         Samples per row of the block matrix.
     chunk : int > 0
         Partials per float32 partial sum.
+    owners : int >= 0
+        With owner ids 0..owners-1, ``owner_counts`` keeps each owner's partial count.
     """
 
     def __init__(self, capacity: int, *, max_block: int = 256, split: int = DEFAULT_SPLIT,
-                 chunk: int = DEFAULT_CHUNK) -> None:
+                 chunk: int = DEFAULT_CHUNK, owners: int = 0) -> None:
         for name, value in (("capacity", capacity), ("max_block", max_block), ("split", split), ("chunk", chunk)):
             if value < 1:
                 raise ParameterError(f"{name}={value} must be >= 1")
@@ -117,6 +119,9 @@ class OscillatorBank:
         self.lam = np.zeros(capacity, dtype=np.complex128)  # log of the per-sample factor
         self.owner = np.full(capacity, -1, dtype=np.int64)  # who added the partial (the engine's voice)
         self.index = np.zeros(capacity, dtype=np.int64)  # the owner's number for it (partial n)
+        self.owner_counts = np.zeros(owners, dtype=np.int64)  # partials per owner id
+        self._dead = np.zeros(capacity, dtype=bool)
+        self._dead_owner = np.zeros(capacity, dtype=np.int64)
         self._table = np.zeros((capacity, 2, split), dtype=np.float32)  # [Re p^i, -Im p^i]
         self._steps = np.zeros((rows, capacity), dtype=np.complex64)  # p^(I j), slots along the rows
         self._bits = _bits(max_block)
@@ -184,6 +189,8 @@ class OscillatorBank:
         self.lam[lo:hi] = lam
         self.state[lo:hi] = amplitude
         self.owner[lo:hi] = owner
+        if len(self.owner_counts):
+            self.owner_counts[owner] += n
         self.index[lo:hi] = self._slots[:n] if index is None else index
         self._fill_tables(lo, hi)
         self.count = hi
@@ -213,6 +220,8 @@ class OscillatorBank:
         else:
             self.state[lo:hi] = amplitude
         self.owner[lo:hi] = owner
+        if len(self.owner_counts):
+            self.owner_counts[owner] += n
         self.index[lo:hi] = self._slots[:n]
         self._table[lo:hi] = tables.table
         self._steps[:, lo:hi] = tables.steps
@@ -392,6 +401,11 @@ class OscillatorBank:
         """Fill the holes below the new count with the survivors above it."""
         k = self.count
         n_keep = int(np.count_nonzero(keep))
+        if n_keep < k and len(self.owner_counts):
+            dead = self._dead[:k]
+            np.logical_not(keep, out=dead)
+            gone = np.compress(dead, self.owner[:k], out=self._dead_owner[: k - n_keep])
+            np.subtract.at(self.owner_counts, gone, 1)
         if n_keep < k:
             holes_mask, movers_mask = self._hole_mask[:n_keep], keep[n_keep:k]
             np.logical_not(keep[:n_keep], out=holes_mask)

@@ -114,7 +114,7 @@ class Renderer:
         self.banks, self.voices = [], []
         for state in states:
             room = capacity if capacity is not None else 3 * max_voices * state.max_partials
-            bank = OscillatorBank(room, max_block=block, split=split)
+            bank = OscillatorBank(room, max_block=block, split=split, owners=3 * max_voices)
             self.banks.append(bank)
             self.voices.append(Voices(state, bank, max_voices=max_voices))
         self.safety = SafetyStage(block, ceiling_dbfs=ceiling_dbfs)

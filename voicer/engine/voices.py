@@ -23,6 +23,8 @@ __all__ = ["Voices"]
 
 import numpy as np
 
+from ..errors import ParameterError
+
 from .bank import OscillatorBank
 from .instrument import DAMPER_LEVELS, Instrument
 
@@ -37,7 +39,8 @@ class Voices:
     instrument : Instrument
         The voicing state.
     bank : OscillatorBank
-        Where the partials go; its capacity should hold ``3 * max_voices`` voices.
+        Where the partials go, made with ``owners=3 * max_voices`` (its partial count per
+        voice id); its capacity should hold ``3 * max_voices`` voices.
     max_voices : int
         Polyphony limit (voices not fading out).
     """
@@ -45,6 +48,8 @@ class Voices:
     def __init__(self, instrument: Instrument, bank: OscillatorBank, *, max_voices: int) -> None:
         self.inst, self.bank, self.max_voices = instrument, bank, max_voices
         ids = 3 * max_voices  # room for voices fading out
+        if len(bank.owner_counts) < ids:
+            raise ParameterError(f"the bank keeps counts for {len(bank.owner_counts)} owners; voices need {ids}")
         self.key_of = [-1] * ids
         self.level_of = [0] * ids
         self.fading = [False] * ids
@@ -62,7 +67,6 @@ class Voices:
         self._released: dict[int, None] = {}  # released, not fading voices, oldest first
         self.steals = 0
         self._amp = np.zeros(instrument.max_partials, dtype=np.complex128)
-        self._counts = np.zeros(ids, dtype=np.int64)
         self._loudness = np.zeros(ids, dtype=np.float64)
         self._mag = np.zeros(bank.capacity, dtype=np.float64)
 
@@ -140,12 +144,9 @@ class Voices:
 
     def housekeeping(self, threshold: float) -> None:
         """Drop inaudible partials and free voices that have none left."""
-        bank = self.bank
-        if not bank.cull(threshold):
+        if not self.bank.cull(threshold):
             return  # voices only run out of partials by culling (the rest free their ids)
-        counts = self._counts
-        counts[:] = 0
-        np.add.at(counts, bank.owner[: bank.count], 1)
+        counts = self.bank.owner_counts
         for v, key in enumerate(self.key_of):
             if key >= 0 and counts[v] == 0:
                 self._release_id(v)
