@@ -315,11 +315,8 @@ class OscillatorBank:
             a = self._rows[: rows * k].reshape(rows, k)
             for j in range(rows):  # row by row: a 2-D strided product would make numpy buffer
                 np.multiply(self._steps[first + j, lo:hi], self._c32[lo:hi], out=a[j])
-            part = self._part[:rows]
-            np.matmul(a.view(np.float32), self._table[lo:hi].reshape(2 * k, self.split), out=part)
-            acc += part
-        skip = start - first * self.split
-        out[: stop - start] += acc.reshape(-1)[skip: skip + stop - start]
+            self._accumulate(a, self._table[lo:hi], acc)
+        self._emit(out, acc, start, stop, first)
 
     def render_slots(self, out: NDArray[np.floating], slots: NDArray[np.int64], start: int, stop: int,
                      *, subtract: bool = False) -> None:
@@ -346,9 +343,20 @@ class OscillatorBank:
                 np.multiply(step, c32, out=a[j])
             table = self._g_table[:k]
             self._table.take(idx, axis=0, out=table, mode="clip")
-            part = self._part[:rows]
-            np.matmul(a.view(np.float32), table.reshape(2 * k, self.split), out=part)
-            acc += part
+            self._accumulate(a, table, acc)
+        self._emit(out, acc, start, stop, first, subtract=subtract)
+
+    def _accumulate(self, a: NDArray[np.complex64], table: NDArray[np.float32], acc: NDArray[np.float64]) -> None:
+        """``acc += Re(a @ table)``: the (rows, k) block matrix times k partials' tables,
+        as one real float32 product (interleaved parts, imaginary table negated)."""
+        rows, k = a.shape
+        part = self._part[:rows]
+        np.matmul(a.view(np.float32), table.reshape(2 * k, self.split), out=part)
+        acc += part
+
+    def _emit(self, out: NDArray[np.floating], acc: NDArray[np.float64], start: int, stop: int, first: int,
+              *, subtract: bool = False) -> None:
+        """Add (or subtract) the rendered rows' samples start..stop-1 to ``out``."""
         skip = start - first * self.split
         seg = acc.reshape(-1)[skip: skip + stop - start]
         if subtract:

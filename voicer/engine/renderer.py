@@ -139,20 +139,25 @@ class Renderer:
     def state_name(self) -> str:
         return self.states[self.audible].name
 
-    def flip(self) -> None:
-        """Crossfade to the other voicing state (no effect with one state)."""
+    def flip(self, at: int = 0) -> None:
+        """Crossfade to the other voicing state (no effect with one state), from sample
+        ``at`` of the block being rendered (between blocks: from the next one)."""
         if len(self.states) < 2:
             return
         self.audible = 1 - self.audible
         self._fade_left = self.crossfade - self._fade_left  # reverse a crossfade in progress
         self.stats.flips += 1
+        if self._in_block:
+            self._flips.append(at)  # _mix_block replays the block's flips
+            if self.voices[self.audible].correct is None:
+                self._start_rendering(self.audible, at, self._block_n)
 
     def apply(self, message: mido.Message | str, at: int = 0) -> None:
         """Apply one normalised MIDI message, or the command ``"flip"``, to every state,
         at sample ``at`` of the block being rendered (0 between blocks)."""
         if isinstance(message, str):
             if message == "flip":
-                self._flip_at(at) if self._in_block else self.flip()
+                self.flip(at)
             return
         kind = message.type
         if kind == "note_on":
@@ -164,13 +169,13 @@ class Renderer:
         elif kind == "control_change":
             self._control(message.control, message.value, at)
         elif kind == "program_change" and self.ab_program_change:
-            self._flip_at(at) if self._in_block else self.flip()
+            self.flip(at)
 
     def _control(self, control: int, value: int, at: int) -> None:
         if control == self.ab_cc:
             pressed = value >= 64
             if pressed and not self._ab_pressed:
-                self._flip_at(at) if self._in_block else self.flip()
+                self.flip(at)
             self._ab_pressed = pressed
             return
         for v in self.voices:
@@ -252,16 +257,6 @@ class Renderer:
         buf[:] = 0.0
         self.banks[s].render_segment(buf[at:], at, n)
         self.voices[s].correct = (self._mono[s], n)
-
-    def _flip_at(self, at: int) -> None:
-        if len(self.states) < 2:
-            return
-        self._flips.append(at)
-        self.audible = 1 - self.audible
-        self._fade_left = self.crossfade - self._fade_left
-        self.stats.flips += 1
-        if self.voices[self.audible].correct is None:
-            self._start_rendering(self.audible, at, self._block_n)
 
     def _mix_block(self, n: int) -> None:
         """The block's mix from the banks' buffers, replaying its flips in order."""

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-__all__ = ["prepare_states", "DEFAULT_SAMPLE_RATE", "SPLIT"]
+__all__ = ["prepare_states"]
 
 from pathlib import Path
 
@@ -10,11 +10,8 @@ from ..tone.preset import Preset
 from ..tone.tables import TableSettings
 from ..tone.voicing import apply_voicing, load_voicing
 from .bank import DEFAULT_SPLIT
-from .defaults import DEFAULT_SAMPLE_RATE
 from .host import load_plugin
 from .instrument import Instrument
-
-SPLIT = DEFAULT_SPLIT
 
 
 def prepare_states(preset: Preset, voicing: str | Path | None, *, sample_rate: int, block: int,
@@ -30,4 +27,4 @@ def prepare_states(preset: Preset, voicing: str | Path | None, *, sample_rate: i
         voiced = apply_voicing(preset, load_voicing(voicing))
         presets = [("A", preset), ("B", voiced)] if both else [("B", voiced)]
     return [Instrument(builder.build(p, settings=settings, progress=progress), sample_rate=sample_rate,
-                       max_block=block, split=SPLIT, name=name) for name, p in presets]
+                       max_block=block, split=DEFAULT_SPLIT, name=name) for name, p in presets]
