@@ -253,6 +253,16 @@ def test_all_notes_off_and_stop_clear_stuck_notes(tables) -> None:
     assert r.voices[0].voices == 0
 
 
+def test_peak_meter_catches_a_note_that_ended_between_readings(tables) -> None:
+    # A short note that is over (all sound off) before the display reads the counts.
+    r = make(tables)
+    render(r, [(0, on(60)), (FS // 8, cc(120, 0))], FS // 2)
+    assert r.voices[0].voices == 0 and r.banks[0].count == 0  # the instantaneous counts missed it
+    voices, partials = r.meter.take()
+    assert voices == 1 and partials > 0
+    assert r.meter.take() == (0, 0)  # a reading starts the next interval from zero
+
+
 # --- polyphony, A/B, safety ---------------------------------------------------------
 
 def test_voice_limit_steals_released_voices_first(tables) -> None:

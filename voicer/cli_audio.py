@@ -158,8 +158,8 @@ def _play(args: argparse.Namespace) -> int:
 
 
 def _status(renderer: Renderer, sink: PortAudioSink) -> str:
-    v = renderer.voices[renderer.audible]
-    return (f"\rstate {renderer.state_name}  voices {v.voices:3d}  partials {renderer.banks[renderer.audible].count:6d}"
+    voices, partials = renderer.meter.take()  # peaks since the last status line
+    return (f"\rstate {renderer.state_name}  voices {voices:3d}  partials {partials:6d}"
             f"  load {100 * sink.load:5.1f} %  late {sink.late_blocks}   ")
 
 

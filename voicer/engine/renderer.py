@@ -18,7 +18,7 @@ removed and the fault counted. After construction nothing allocates arrays.
 
 from __future__ import annotations
 
-__all__ = ["Renderer", "RenderStats", "HOUSEKEEPING_FRAMES", "DEFAULT_GAIN_DB", "DEFAULT_MAX_VOICES"]
+__all__ = ["Renderer", "RenderStats", "PeakMeter", "HOUSEKEEPING_FRAMES", "DEFAULT_GAIN_DB", "DEFAULT_MAX_VOICES"]
 
 from dataclasses import dataclass
 from typing import Iterable, Iterator, Sequence
@@ -62,6 +62,33 @@ class RenderStats:
     @property
     def peak_dbfs(self) -> float:
         return float(20.0 * np.log10(self.peak_abs)) if self.peak_abs > 0 else float("-inf")
+
+
+class PeakMeter:
+    """Peak voices and partials of the audible state since the display last read them.
+
+    The audio thread raises the peaks every block; a display thread calls :meth:`take`.
+    Sampling the instantaneous counts instead misses notes shorter than the display
+    interval (a render faster than real time, or a staccato passage).
+    """
+
+    def __init__(self) -> None:
+        self.voices = 0
+        self.partials = 0
+
+    def note(self, voices: int, partials: int) -> None:
+        """In the audio thread, once a block."""
+        if voices > self.voices:
+            self.voices = voices
+        if partials > self.partials:
+            self.partials = partials
+
+    def take(self) -> tuple[int, int]:
+        """From the display thread: the peaks so far, then start again from zero. A block
+        that lands between the read and the reset counts toward the next reading only."""
+        voices, partials = self.voices, self.partials
+        self.voices = self.partials = 0
+        return voices, partials
 
 
 class Renderer:
@@ -119,6 +146,7 @@ class Renderer:
             self.voices.append(Voices(state, bank, max_voices=max_voices))
         self.safety = SafetyStage(block, ceiling_dbfs=ceiling_dbfs)
         self.stats = RenderStats()
+        self.meter = PeakMeter()
         self.audible = 0
         self._fade_left = 0  # samples of crossfade still to go (toward self.audible)
         self._ab_pressed = False
@@ -311,6 +339,7 @@ class Renderer:
         st.partial_blocks += count
         st.peak_abs = max(st.peak_abs, self.safety.peak)
         st.nonfinite = self.safety.nonfinite
+        self.meter.note(self.voices[self.audible].voices, count)
 
     def _reset_bad_voices(self) -> None:
         for bank, voices in zip(self.banks, self.voices):
