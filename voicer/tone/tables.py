@@ -20,11 +20,12 @@ __all__ = [
     "ModalTables",
     "Blows",
     "simulate_blows",
+    "simulate_variants",
     "build_tables",
 ]
 
 from dataclasses import asdict, dataclass, field
-from typing import Any, Iterable
+from typing import Any, Iterable, Sequence
 
 import numpy as np
 from numpy.typing import NDArray
@@ -225,15 +226,29 @@ def simulate_blows(preset: Preset, keys: Iterable[int], speeds_m_s: Iterable[flo
         Keep the felt force at every step (for plots).
     """
     keys = [int(k) for k in keys]
+    tables, forces, dts = _simulate([(preset, k) for k in keys], speeds_m_s, settings=settings, record=record)
+    return Blows(tables=dict(zip(keys, tables)), force_n=dict(zip(keys, forces)) if record else None,
+                 dt_s=dict(zip(keys, dts)))
+
+
+def simulate_variants(items: Sequence[tuple[Preset, int]], speeds_m_s: Iterable[float], *,
+                      settings: TableSettings = TableSettings()) -> list[KeyTable]:
+    """One key of each of several presets (e.g. felt variants for a fit), in one batch:
+    the contact kernel's cost per time step hardly grows with the number of cases."""
+    return _simulate(items, speeds_m_s, settings=settings, record=False)[0]
+
+
+def _simulate(items: Sequence[tuple[Preset, int]], speeds_m_s: Iterable[float], *, settings: TableSettings,
+              record: bool) -> tuple[list[KeyTable], list[NDArray[np.float64]], list[NDArray[np.float64]]]:
     speeds = np.asarray(list(speeds_m_s), dtype=float)
-    info = {k: _key_modes(preset, k, settings) for k in keys}
-    n_max = max(len(info[k]["modes"].n) for k in keys)
-    labels, case_key = [], []
+    info = [_key_modes(p, k, settings) for p, k in items]
+    n_max = max(len(d["modes"].n) for d in info)
+    labels = []
     rows: dict[str, list[Any]] = {n: [] for n in ("hammer", "share", "offset", "omega", "sigma", "coupling", "mass",
                                                   "residual")}
     cases: dict[str, list[float]] = {n: [] for n in ("mass", "speed", "k", "p", "hyst", "tau")}
-    for k in keys:
-        d, m = info[k], info[k]["modes"]
+    for (_, k), d in zip(items, info):
+        m = d["modes"]
         pad = n_max - len(m.n)
         omega = np.pad(m.omega, (0, pad), mode="edge")
         sigma = np.pad(m.sigma_per_s, (0, pad))
@@ -241,7 +256,6 @@ def simulate_blows(preset: Preset, keys: Iterable[int], speeds_m_s: Iterable[flo
         for speed in speeds:
             h = len(labels)
             labels.append(f"key {k} ({key_name(k)}) at {speed:.3g} m/s")
-            case_key.append(k)
             for name, value in (("mass", d["hammer_kg"]), ("speed", speed), ("k", d["felt_k"]), ("p", d["felt_p"]),
                                 ("hyst", d["hysteresis"]), ("tau", d["relaxation_s"])):
                 cases[name].append(value)
@@ -259,14 +273,14 @@ def simulate_blows(preset: Preset, keys: Iterable[int], speeds_m_s: Iterable[flo
         residual_m_per_n=np.asarray(rows["residual"]), steps=settings.steps)
     result = simulate_contacts(problem, record=record)
 
-    tables: dict[int, KeyTable] = {}
-    forces: dict[int, list[NDArray[np.float64]]] | None = {} if record else None
-    dts: dict[int, NDArray[np.float64]] = {}
+    tables: list[KeyTable] = []
+    forces: list[NDArray[np.float64]] = []
+    dts: list[NDArray[np.float64]] = []
     row = 0
-    for k in keys:
-        d, m = info[k], info[k]["modes"]
+    for item, ((_, k), d) in enumerate(zip(items, info)):
+        m = d["modes"]
         n, n_s = d["band"], d["strings"]
-        h0 = keys.index(k) * len(speeds)
+        h0 = item * len(speeds)
         first_row = row
         amp = np.empty((len(speeds), n_s, n), dtype=complex)
         for j in range(len(speeds)):
@@ -274,15 +288,15 @@ def simulate_blows(preset: Preset, keys: Iterable[int], speeds_m_s: Iterable[flo
                 amp[j, s] = 2.0 * d["bridge"][:n] * result.eta0[row, :n]
                 row += 1
         hs = slice(h0, h0 + len(speeds))
-        tables[k] = KeyTable(
+        tables.append(KeyTable(
             key=k, speeds_m_s=speeds.copy(), freq_hz=result.lam[first_row, :n].imag / (2 * np.pi),
             sigma_per_s=m.sigma_per_s[:n].copy(), amplitude_n=amp, contact_s=result.contact_s[hs].copy(),
             peak_force_n=result.peak_force_n[hs].copy(), rebound_m_s=result.rebound_m_s[hs].copy(),
-            contacts=result.contacts[hs].copy())
-        dts[k] = problem.dt_s[hs].copy()
-        if forces is not None and result.force_n is not None:
-            forces[k] = result.force_n[hs]
-    return Blows(tables=tables, force_n=forces, dt_s=dts)
+            contacts=result.contacts[hs].copy()))
+        dts.append(problem.dt_s[hs].copy())
+        if record and result.force_n is not None:
+            forces.append(result.force_n[hs])
+    return tables, forces, dts
 
 
 def _key_digest(preset: Preset, key: int, settings: TableSettings) -> str:
