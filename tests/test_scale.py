@@ -5,8 +5,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from voicer.physics.constants import COPPER_DENSITY_KG_M3, STEEL_DENSITY_KG_M3
-from voicer.physics.scale import TooStiffError, derive_strings, fletcher_b, winding_mass_kg_per_m
+from voicer.errors import ParameterError
+from voicer.physics.constants import COPPER_DENSITY_KG_M3, STEEL_DENSITY_KG_M3, STEEL_YOUNGS_MODULUS_PA
+from voicer.physics.scale import TooStiffError, core_diameter_for_b, derive_strings, fletcher_b, winding_mass_kg_per_m
 from voicer.physics.strings import clamped_ratios, pinned_ratios, strike_weights
 from voicer.physics.tuning import KEYS, equal_tempered_hz, tuned_hz
 from voicer.tone.preset import parse_preset, preset_to_toml
@@ -143,3 +144,21 @@ def test_overrides_change_one_key(demo) -> None:
     diff = np.flatnonzero(s.values["strike_ratio"] != demo.scale.values["strike_ratio"])
     assert diff.tolist() == [64 - 21] and s.value("strike_ratio", 64) == 0.14
     assert "[override.64]" in preset_to_toml(parse_preset(data))
+
+
+def test_core_diameter_for_b_inverts_fletcher() -> None:
+    # Plain pinned wire: B f0^2 = pi^2 E I / (4 mu L^4) with I/mu = d^2 / (16 rho) (Fletcher 1964),
+    # so d^2 = 64 rho L^4 B f1^2 / (pi^2 E (1 + B)) in closed form.
+    b, f1, length = 4.2e-4, 261.63, 0.655
+    d = core_diameter_for_b(b, f1, length)
+    closed = np.sqrt(64 * STEEL_DENSITY_KG_M3 * length**4 * b * f1**2 / (np.pi**2 * STEEL_YOUNGS_MODULUS_PA * (1 + b)))
+    assert d == pytest.approx(closed, rel=1e-9)
+    # Wound strings (winding by diameter or by mass), either end condition: derive_strings gives b back.
+    for kw in ({"winding_diameter_m": 3.0e-3}, {"added_mass_kg_per_m": 0.02}):
+        for end in ("pinned", "clamped"):
+            d = core_diameter_for_b(1.5e-4, 55.0, 1.6, end=end, **kw)
+            wind = (winding_mass_kg_per_m(np.asarray(d), np.asarray(kw["winding_diameter_m"]))
+                    if "winding_diameter_m" in kw else kw["added_mass_kg_per_m"])
+            assert derive_strings(55.0, 1.6, d, wind, end=end)[3] == pytest.approx(1.5e-4, rel=1e-9)
+    with pytest.raises(ParameterError, match="outside 0.3..2.5 mm"):
+        core_diameter_for_b(0.5, f1, length)

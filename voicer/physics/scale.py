@@ -15,13 +15,15 @@ the stiffness, the winding only mass.
 
 from __future__ import annotations
 
-__all__ = ["Scale", "derive_strings", "fletcher_b", "TooStiffError", "winding_mass_kg_per_m", "B_LIMITS", "TENSION_LIMITS_N"]
+__all__ = ["Scale", "derive_strings", "fletcher_b", "TooStiffError", "winding_mass_kg_per_m", "core_diameter_for_b",
+           "B_LIMITS", "TENSION_LIMITS_N"]
 
 from dataclasses import dataclass
 from typing import Mapping
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
+from scipy.optimize import brentq
 
 from ..errors import ParameterError, PresetError
 from .constants import (
@@ -128,6 +130,52 @@ def derive_strings(
                 break
     tension = 4.0 * mu * length**2 * f0**2
     return f0, mu, tension, fletcher_b(d, tension, length)
+
+
+def core_diameter_for_b(b: float, f1_hz: float, length_m: float, *, winding_diameter_m: float | None = None,
+                        added_mass_kg_per_m: float = 0.0, end: EndCondition = "pinned",
+                        range_m: tuple[float, float] = (0.3e-3, 2.5e-3)) -> float:
+    """The core diameter that gives a string of this length and pitch the inharmonicity ``b``.
+
+    A recording gives B, not the wire; keeping the preset's length and winding, B rises
+    monotonically with the core diameter (stiffness ~ d^4 against mass ~ d^2 plus winding),
+    so the diameter follows by root finding on :func:`derive_strings`.
+
+    Parameters
+    ----------
+    b : float > 0
+        Target inharmonicity coefficient.
+    f1_hz, length_m : float > 0
+        First partial and speaking length.
+    winding_diameter_m : float, optional
+        Outer diameter of a winding (its mass then follows the core).
+    added_mass_kg_per_m : float >= 0
+        Or the winding as a fixed mass per length (0 for plain wire).
+    end : {'pinned', 'clamped'}
+    range_m : (float, float)
+        Diameters searched (the preset's allowed range).
+
+    Raises
+    ------
+    ParameterError
+        If no diameter in the range gives ``b`` (with the B range it can give).
+    """
+    def b_of(d: float) -> float:
+        wind = (float(winding_mass_kg_per_m(np.asarray(d), np.asarray(winding_diameter_m)))
+                if winding_diameter_m is not None else added_mass_kg_per_m)
+        try:
+            return float(derive_strings(f1_hz, length_m, d, wind, end=end)[3])
+        except TooStiffError:
+            return np.inf
+
+    lo, hi = range_m
+    if winding_diameter_m is not None:
+        hi = min(hi, winding_diameter_m * (1 - 1e-9))
+    b_lo, b_hi = b_of(lo), b_of(hi)
+    if not b_lo <= b <= b_hi:
+        raise ParameterError(f"B = {b:.3g} needs a core diameter outside {lo * 1e3:g}..{hi * 1e3:g} mm for a "
+                             f"{length_m:g} m string at {f1_hz:.2f} Hz (it gives B {b_lo:.3g}..{b_hi:.3g})")
+    return float(brentq(lambda d: b_of(d) - b, lo, hi, xtol=1e-15, rtol=1e-13))
 
 
 def _first_bad(mask: NDArray[np.bool_]) -> int | None:
