@@ -18,6 +18,14 @@ Layout::
     [override.64]                # optional per-key values, applied after interpolation
     strike_ratio = 0.121
 
+    [provenance]                 # optional: where a fitted preset came from, kept verbatim
+    base = "kestrel-190"
+
+    [measured.60]                # optional: partials of a recorded strike (voicer.tone.measured)
+    ...
+    [measured.60.fitted]         # the per-key values that strike corresponds to
+    felt_force_1mm_n = 25.0
+
 Each per-key field is interpolated over the anchors that give it: a monotone cubic
 (PCHIP, no overshoot between anchors) on the value or its logarithm, held constant beyond
 the outermost anchors; whole-number fields (the unison count) are held from the anchor at
@@ -28,12 +36,18 @@ Loading checks every field against :mod:`voicer.tone.params` and then the derive
 physics (B, tension); the first problem raises one :class:`~voicer.errors.PresetError`
 naming the file, key and field with the allowed range. Saving is atomic and keeps a
 ``.bak`` of the file it replaces.
+
+The measured partials do not enter the physical model (nor its table cache key); the
+additive model (:mod:`voicer.engine.additive`) replays them. Each key's ``fitted`` values
+are validated as overrides of this preset (:attr:`Preset.fit_reference`).
 """
 
 from __future__ import annotations
 
 __all__ = ["FORMAT_VERSION", "Preset", "load_preset", "parse_preset", "save_preset", "preset_to_toml"]
 
+import copy
+import datetime
 import tomllib
 from dataclasses import dataclass, field
 from functools import cached_property
@@ -49,10 +63,11 @@ from ..io.atomic import atomic_write_bytes
 from ..physics.scale import Scale
 from ..physics.tuning import HIGHEST_KEY, KEYS, LOWEST_KEY
 from .interp import pchip
+from .measured import MeasuredKey, parse_measured_key
 from .params import INSTRUMENT_PARAM_BY_NAME, INSTRUMENT_PARAMS, KEY_PARAM_BY_NAME, KEY_PARAMS, WINDING_FIELDS, Param
 
 FORMAT_VERSION = 1
-_TOP_LEVEL = ("format", "instrument", "anchor", "override")
+_TOP_LEVEL = ("format", "instrument", "anchor", "override", "measured", "provenance")
 
 
 @dataclass(frozen=True)
@@ -67,6 +82,10 @@ class Preset:
         Anchor tables sorted by key; each has ``key`` and the fields it gives.
     overrides : mapping of int to mapping
         Per-key values applied after interpolation.
+    measured : mapping of int to MeasuredKey
+        Partials of recorded strikes, per key (``[measured.K]``; empty unless fitted).
+    provenance : mapping
+        The ``[provenance]`` table, kept verbatim (empty if absent).
     source : str or None
         File it was read from (not part of equality).
     """
@@ -74,6 +93,8 @@ class Preset:
     instrument: Mapping[str, Any]
     anchors: tuple[Mapping[str, Any], ...]
     overrides: Mapping[int, Mapping[str, Any]]
+    measured: Mapping[int, MeasuredKey] = field(default_factory=dict)
+    provenance: Mapping[str, Any] = field(default_factory=dict)
     source: str | None = field(default=None, compare=False)
 
     @cached_property
@@ -89,26 +110,50 @@ class Preset:
         except PresetError as exc:
             raise PresetError(exc.reason, file=self.source, key=exc.key, field=exc.field) from None
 
+    @cached_property
+    def fit_reference(self) -> "Preset":
+        """This preset with each measured key's ``fitted`` values restored as overrides
+        (without the measured and provenance sections): the instrument as the recorded
+        strikes were fitted. The preset itself when nothing is measured.
+
+        Overrides act on their own key only, so one preset holds every key's reference.
+        """
+        if not self.measured:
+            return self
+        data = self.to_dict()
+        del data["measured"]
+        data.pop("provenance", None)
+        return _with_overrides(data, {k: m.fitted for k, m in self.measured.items()}, self.source)
+
     def with_key_values(self, key: int, values: Mapping[str, Any]) -> "Preset":
-        """A copy with per-key overrides for one key, validated like the file.
+        """A copy with per-key overrides for one key, validated like the file (the measured
+        and provenance sections are kept).
 
         Raises
         ------
         PresetError
             If a field is unknown or a value out of range (naming this preset's file).
         """
-        data = self.to_dict()
-        overrides = data.setdefault("override", {})
-        overrides[str(key)] = {**overrides.get(str(key), {}), **values}
-        return parse_preset(data, source=self.source)
+        return _with_overrides(self.to_dict(), {key: values}, self.source)
 
     def to_dict(self) -> dict[str, Any]:
         """Plain data as written to TOML."""
         out: dict[str, Any] = {"format": FORMAT_VERSION, "instrument": dict(self.instrument)}
+        if self.provenance:
+            out["provenance"] = copy.deepcopy(dict(self.provenance))
         out["anchor"] = [dict(a) for a in self.anchors]
         if self.overrides:
             out["override"] = {str(k): dict(v) for k, v in sorted(self.overrides.items())}
+        if self.measured:
+            out["measured"] = {str(k): m.to_dict() for k, m in sorted(self.measured.items())}
         return out
+
+
+def _with_overrides(data: dict[str, Any], values: Mapping[int, Mapping[str, Any]], source: str | None) -> Preset:
+    overrides = data.setdefault("override", {})
+    for key, fields in values.items():
+        overrides[str(key)] = {**overrides.get(str(key), {}), **fields}
+    return parse_preset(data, source=source)
 
 
 def _err(source: str | None, message: str, *, key: int | None = None, field_name: str | None = None) -> PresetError:
@@ -128,14 +173,17 @@ def _check_table(table: Any, what: str, source: str | None, key: int | None) -> 
     return table
 
 
-def _check_key_fields(table: Mapping[str, Any], source: str | None, key: int) -> dict[str, Any]:
+def _check_key_fields(table: Mapping[str, Any], source: str | None, key: int, where: str = "") -> dict[str, Any]:
     out: dict[str, Any] = {}
     for name, value in table.items():
         param = KEY_PARAM_BY_NAME.get(name)
         if param is None:
-            raise _err(source, f"unknown field; per-key fields are: {', '.join(KEY_PARAM_BY_NAME)}",
+            raise _err(source, f"{where}unknown field; per-key fields are: {', '.join(KEY_PARAM_BY_NAME)}",
                        key=key, field_name=name)
-        out[name] = _check_field(param, value, source, key)
+        try:
+            out[name] = _check_field(param, value, source, key)
+        except PresetError as exc:
+            raise _err(source, where + exc.reason, key=key, field_name=name) from None
     # Keep the table's field order so that a saved file reads like the parameter table.
     return {p.name: out[p.name] for p in KEY_PARAMS if p.name in out}
 
@@ -211,12 +259,63 @@ def parse_preset(data: Mapping[str, Any], *, source: str | None = None) -> Prese
         instrument=instrument,
         anchors=tuple(anchors[k] for k in sorted(anchors)),
         overrides=dict(sorted(overrides.items())),
+        measured=_parse_measured(data.get("measured", {}), source),
+        provenance=_check_provenance(data.get("provenance", {}), source),
         source=source,
     )
     _check_winding(preset)
     _check_consistency(preset)
     preset.scale  # noqa: B018 - derive now so that bad physics is reported at load
+    try:
+        preset.fit_reference  # noqa: B018 - the fitted values must make a valid preset too
+    except PresetError as exc:
+        # A rule over several keys (one way of giving the winding) names no key: blame
+        # the first measured key whose fitted values give that field.
+        key = exc.key if exc.key is not None else next(
+            (k for k, m in preset.measured.items() if exc.field in m.fitted), None)
+        where = f"[measured.{key}.fitted]" if key is not None else "the [measured.K.fitted] values"
+        raise PresetError(f"{where}: {exc.reason}", file=source, key=key, field=exc.field) from None
     return preset
+
+
+def _parse_measured(raw: Any, source: str | None) -> dict[int, MeasuredKey]:
+    tables = _check_table(raw, "[measured]", source, None)
+    out: dict[int, MeasuredKey] = {}
+    for raw_key, table in tables.items():
+        key = _parse_key_number(raw_key, source, "measured key")
+        table = dict(_check_table(table, f"[measured.{raw_key}]", source, key))
+        if "fitted" not in table:
+            raise _err(source, f"[measured.{key}] needs a [measured.{key}.fitted] table with the per-key values "
+                       "the strike was fitted with (a voicing change is heard as the change from these)",
+                       key=key, field_name="fitted")
+        where = f"[measured.{key}.fitted] "
+        fitted = _check_table(table.pop("fitted"), where.strip(), source, key)
+        if not fitted:
+            raise _err(source, f"{where}is empty; give at least the per-key values the fit found", key=key,
+                       field_name="fitted")
+        out[key] = parse_measured_key(key, table, _check_key_fields(fitted, source, key, where), source=source)
+    return dict(sorted(out.items()))
+
+
+_TOML_SCALARS = (str, bool, int, float, datetime.datetime, datetime.date, datetime.time)
+
+
+def _check_provenance(raw: Any, source: str | None) -> dict[str, Any]:
+    """The ``[provenance]`` table, checked to hold TOML values only (a deep copy)."""
+    def walk(value: Any, path: str) -> Any:
+        if isinstance(value, dict):
+            for name in value:
+                if not isinstance(name, str):
+                    raise _err(source, f"[provenance] {path}: names must be text, got {name!r}", field_name=path)
+            return {name: walk(v, f"{path}.{name}") for name, v in value.items()}
+        if isinstance(value, (list, tuple)):
+            return [walk(v, f"{path}[{i}]") for i, v in enumerate(value)]
+        if isinstance(value, _TOML_SCALARS):
+            return value
+        raise _err(source, f"[provenance] {path} = {value!r} is not a TOML value (text, number, boolean, date, "
+                   "array or table of these)", field_name=path)
+
+    return walk(dict(_check_table(raw, "[provenance]", source, None)), "provenance")
 
 
 def _check_winding(preset: Preset) -> None:
