@@ -261,7 +261,7 @@ def test_render_bad_input_exits_2_with_one_line(capsys, tmp_path, midi, case) ->
         expected = f"{plan}: cannot read the voicing plan"
     else:
         extra = ["--model", "nope"]
-        expected = "no models plugin named 'nope' (available: physical"
+        expected = "no models plugin named 'nope' (available: additive, physical"
     code, stdout, err = run(capsys, "render", "demo", song, "-o", out, "--tail", "0.5", *extra)
     assert code == 2 and stdout == ""
     assert err.count("\n") == 1 and err.endswith("\n"), f"expected one line on stderr, got {err!r}"

@@ -25,7 +25,7 @@ from voicer.errors import VoicerError
 PYPROJECT = Path(__file__).resolve().parent.parent / "pyproject.toml"
 # The built-ins the package promises (the brief and pyproject.toml agree; checked below).
 BUILTINS = {
-    "models": {"physical"},
+    "models": {"physical", "additive"},
     "sinks": {"null", "file", "portaudio"},
     "sources": {"midi-file", "midi-port"},
 }
