@@ -237,6 +237,37 @@ def build_parser() -> argparse.ArgumentParser:
                        examples=["voicer plugins"])
     plugins.set_defaults(func=_audio("cmd_plugins"))
 
+    record = _command(
+        sub, "record", help="guided recording: asks for each key, saves one FLAC per strike and an index",
+        description="Record a piano key by key: each step names the key and dynamic to play, waits for the\n"
+                    "strike, captures a fixed length (6 s at A0 to 3 s at C8), checks level and clipping (asking\n"
+                    "again when a strike is too soft, clipped or doubled) and saves KKK-NAME-DYN-T.flac with\n"
+                    "an entry in takes.json. Run it again on the same folder to continue an interrupted session:\n"
+                    "recorded steps are skipped, and delete a take's file to record that step again.",
+        examples=["voicer record --keys 21-108 --dynamics mf,ff -o takes/",
+                  "voicer record --keys 60,64,67 --dynamics p,mf,ff -o takes/ --device USB --sample-rate 96000",
+                  "voicer record --keys 21-108 --dynamics mf -o takes/ --input-file long-take.flac --fast"])
+    record.add_argument("--keys", required=True, metavar="KEYS",
+                        help="MIDI keys in the order to play: ranges and lists, e.g. 21-108 or 60,64,67")
+    record.add_argument("--dynamics", default="mf", metavar="LIST",
+                        help="dynamics per key from pp, p, mp, mf, f, ff, e.g. mf,ff (default mf)")
+    record.add_argument("-o", "--out", required=True, metavar="DIR", help="folder of the takes (made if missing)")
+    record.add_argument("--device", metavar="NAME", help="audio input by name, part of a name, or number")
+    record.add_argument("--sample-rate", type=_ranged_int(8000, 192000, "sample rate"), metavar="HZ",
+                        help=f"device sample rate (default {DEFAULT_SAMPLE_RATE}; a replayed file keeps its own)")
+    record.add_argument("--seconds", type=_seconds(zero_ok=False), metavar="S",
+                        help="capture length after each strike, for every key (default 6 s bass to 3 s treble)")
+    record.add_argument("--input-file", metavar="FILE",
+                        help="replay a recording as if it came from the input (tests, or splitting a long take)")
+    record.add_argument("--fast", action="store_true", help="with --input-file: as fast as possible, not in real time")
+
+    def _record(args: argparse.Namespace) -> int:
+        from .cli_record import cmd_record  # imported when run: no audio or analysis modules for other commands
+
+        return cmd_record(args)
+
+    record.set_defaults(func=_record)
+
     scale = _command(
         sub, "scale", help="per-key table of a preset: f0, length, tension, B, unison, partials",
         description="Print what the model believes about every key of a piano preset.",
