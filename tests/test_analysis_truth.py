@@ -15,38 +15,14 @@ import numpy as np
 import pytest
 import soundfile as sf
 
+from synth import CENTS_OFF, ONSET_S, synth_note
 from voicer.analysis.note import analyze_recording
-from voicer.physics.tuning import equal_tempered_hz
 
-ONSET_S, LENGTH_S = 0.3, 4.0
 # (key, B, strike ratio, sample rate): B rising with key as on a real piano (physics.md
 # "Typical B", from memory), strike ratios within the usual 1/7..1/9 and beyond.
 CASES = [(28, 2.5e-4, 0.121, 44_100), (40, 3.0e-4, 0.118, 48_000), (52, 3.4e-4, 0.125, 96_000),
          (60, 4.0e-4, 0.113, 44_100), (69, 5.5e-4, 0.130, 48_000), (76, 8.0e-4, 0.110, 96_000),
          (88, 2.0e-3, 0.105, 48_000), (100, 7.0e-3, 0.095, 44_100)]
-CENTS_OFF = 3.0  # every note a little sharp of ET
-
-
-def synth_note(key, b, beta, fs, rng, *, snr_db=40.0):
-    """The note and its truth: (signal, f1, partial table)."""
-    f1 = equal_tempered_hz(key) * 2 ** (CENTS_OFF / 1200)
-    f0 = f1 / np.sqrt(1 + b)
-    n = np.arange(1, 61)
-    f = n * f0 * np.sqrt(1 + b * n**2)
-    n, f = n[f < 0.45 * fs], f[f < 0.45 * fs]
-    sigma = 0.6 + 2.5e-10 * (2 * np.pi * f) ** 2 * (1 + key / 60)
-    amp = 0.3 * np.abs(np.sin(n * np.pi * beta)) / (1 + (n / 6.0) ** 2) + 1e-4
-    t = np.arange(int((ONSET_S + LENGTH_S) * fs)) / fs
-    tt = np.clip(t - ONSET_S, 0, None)
-    on = t >= ONSET_S
-    phase = rng.uniform(0, 2 * np.pi, len(n))
-    x = np.zeros_like(t)
-    for a, fr, s, ph in zip(amp, f, sigma, phase):
-        x += on * a * np.exp(-s * tt) * np.sin(2 * np.pi * fr * tt + ph)
-    first = (t >= ONSET_S) & (t < ONSET_S + 1.0)
-    noise = np.sqrt(np.mean(x[first] ** 2)) * 10 ** (-snr_db / 20)
-    x += noise * rng.standard_normal(len(t))
-    return x, f1, {"n": n, "freq_hz": f, "t60_s": np.log(1000) / sigma, "amp": amp}
 
 
 @pytest.mark.parametrize("key,b,beta,fs", CASES)
@@ -71,3 +47,23 @@ def test_note_analysis_meets_the_targets(tmp_path, rng, key, b, beta, fs) -> Non
     if len(note.partials) >= 12:
         assert note.strike is not None and note.strike.quality != "poor"
         assert note.strike.ratio == pytest.approx(beta, abs=0.005)
+
+
+def test_mains_hum_is_never_a_partial(tmp_path, rng) -> None:
+    # A1 (55 Hz, partials at 55, 110, 165 ... Hz) beside 50 Hz hum and its harmonics: the
+    # hum does not decay and sits still (common practice: mains 50 Hz in Europe).
+    key, b, beta, fs = 33, 2.0e-4, 0.12, 48_000
+    x, f1, truth = synth_note(key, b, beta, fs, rng, hum_dbfs=-40.0)
+    path = tmp_path / "a1-hum.wav"
+    sf.write(path, x.astype(np.float32), fs, subtype="FLOAT")
+    analysis = analyze_recording(path)
+    assert any(t.mains and abs(t.freq_hz - 50.0) < 0.5 for t in analysis.steady)
+    (note,) = analysis.notes
+    # Every partial reported is the string's own (partial 9, 499.8 Hz, sits 0.2 Hz from the
+    # 10th hum harmonic and must come out at the string's frequency, not the hum's).
+    true_hz = dict(zip(truth["n"].tolist(), truth["freq_hz"]))
+    for p in note.partials:
+        assert p.freq_hz == pytest.approx(true_hz[p.n], abs=0.05), f"partial {p.n} at {p.freq_hz:.2f} Hz"
+    assert len(note.partials) >= 20
+    assert abs(1200 * np.log2(note.first_partial_hz / f1)) < 0.1
+    assert note.b == pytest.approx(b, rel=0.01)

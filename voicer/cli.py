@@ -9,6 +9,7 @@ from __future__ import annotations
 __all__ = ["main", "build_parser"]
 
 import argparse
+import importlib
 import json
 import math
 import os
@@ -89,6 +90,19 @@ def _ranged_int(lo: int, hi: int, what: str) -> Callable[[str], int]:
     return parse
 
 
+def _ranged_float(lo: float, hi: float, what: str) -> Callable[[str], float]:
+    def parse(text: str) -> float:
+        try:
+            value = float(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+        if not lo <= value <= hi:  # also refuses nan
+            raise argparse.ArgumentTypeError(f"{what} {text} is outside {lo:g}..{hi:g}")
+        return value
+
+    return parse
+
+
 def _seconds(*, zero_ok: bool) -> Callable[[str], float]:
     def parse(text: str) -> float:
         try:
@@ -142,14 +156,17 @@ class _Parser(argparse.ArgumentParser):
         self.exit(EXIT_BAD_INPUT, f"{self.prog}: error: {message} (see {self.prog} --help)\n")
 
 
-def _audio(name: str) -> Callable[[argparse.Namespace], int]:
-    """A sound command, imported when run (the engine is not needed by `scale` or `inspect`)."""
+def _lazy(module: str, name: str) -> Callable[[argparse.Namespace], int]:
+    """A command imported when run (the engine or the analysis is not needed by `scale`)."""
     def run(args: argparse.Namespace) -> int:
-        from . import cli_audio
-
-        return getattr(cli_audio, name)(args)
+        return getattr(importlib.import_module(f"{__package__}.{module}"), name)(args)
 
     return run
+
+
+def _audio(name: str) -> Callable[[argparse.Namespace], int]:
+    """A sound command (voicer.cli_audio)."""
+    return _lazy("cli_audio", name)
 
 
 def _command(sub: "argparse._SubParsersAction[argparse.ArgumentParser]", name: str, *, help: str,
@@ -261,12 +278,7 @@ def build_parser() -> argparse.ArgumentParser:
                         help="replay a recording as if it came from the input (tests, or splitting a long take)")
     record.add_argument("--fast", action="store_true", help="with --input-file: as fast as possible, not in real time")
 
-    def _record(args: argparse.Namespace) -> int:
-        from .cli_record import cmd_record  # imported when run: no audio or analysis modules for other commands
-
-        return cmd_record(args)
-
-    record.set_defaults(func=_record)
+    record.set_defaults(func=_lazy("cli_record", "cmd_record"))
 
     scale = _command(
         sub, "scale", help="per-key table of a preset: f0, length, tension, B, unison, partials",
@@ -295,6 +307,42 @@ def build_parser() -> argparse.ArgumentParser:
     inspect.add_argument("--plot", metavar="FILE.png", help="draw pulse, bridge force and spectrum (needs matplotlib)")
     inspect.add_argument("--json", action="store_true", help="print JSON (schema in the README)")
     inspect.set_defaults(func=_cmd_inspect)
+
+    analyze = _command(
+        sub, "analyze", help="measure recorded notes: pitch, inharmonicity, partials, decays, strike point, felt",
+        description="Find the struck notes of recordings (one note per file, or a take of many) and measure\n"
+                    "each: first partial and its distance from equal temperament, B, the partials' levels and\n"
+                    "decays, the strike ratio, and the felt and losses fitted against a base preset.",
+        examples=["voicer analyze takes/060-C4-mf-1.flac", "voicer analyze take.wav --key 40 --plot c3.png",
+                  "voicer analyze takes/*.flac --json > analysis.json"])
+    analyze.add_argument("recordings", nargs="+", metavar="RECORDING", help="WAV, FLAC, MP3, OGG ... any sample rate")
+    analyze.add_argument("--key", type=_ranged_int(21, 108, "key"), help="report only this key (MIDI 21..108)")
+    analyze.add_argument("--base", default="demo", metavar="PRESET",
+                         help="preset the felt and losses are fitted against (default demo)")
+    analyze.add_argument("--a4", type=_ranged_float(380.0, 480.0, "A4"), default=440.0, metavar="HZ",
+                         help="reference of equal temperament (default 440 Hz, ISO 16)")
+    analyze.add_argument("--calibration-db", type=_ranged_float(-200.0, 100.0, "calibration"), metavar="DB",
+                         help="known recording gain: dBFS of a 1 N bridge-force partial (e.g. a render's --gain-db)")
+    analyze.add_argument("--partials", type=_positive_int, default=12, metavar="N", help="partials listed (default 12)")
+    analyze.add_argument("--plot", metavar="FILE.png", help="spectrum with the fitted series and model, and decays")
+    analyze.add_argument("--json", action="store_true", help="print JSON (schema in the README)")
+    analyze.set_defaults(func=_lazy("cli_fit", "cmd_analyze"))
+
+    fit = _command(
+        sub, "fit", help="fit a preset to recordings of a real piano",
+        description="Analyse recordings and write a preset whose measured keys carry the measured values\n"
+                    "(pitch, B as core diameter, strike ratio, felt, losses, and the partials as measured),\n"
+                    "the other keys interpolated from them and from the base preset. Never overwrites a file\n"
+                    "without --force (then the old one is kept as .bak); a failed fit writes nothing.",
+        examples=["voicer fit takes/*.flac --base demo -o client.toml",
+                  "voicer fit take.wav --base presets/pianos/kestrel-190.toml -o client.toml --force"])
+    fit.add_argument("recordings", nargs="+", metavar="RECORDING", help="WAV, FLAC, MP3, OGG ... any sample rate")
+    fit.add_argument("--base", required=True, metavar="PRESET", help="preset for what the recordings do not tell")
+    fit.add_argument("-o", "--output", required=True, metavar="OUT.toml", help="the fitted preset")
+    fit.add_argument("--force", action="store_true", help="replace an existing output (keeping OUT.toml.bak)")
+    fit.add_argument("--calibration-db", type=_ranged_float(-200.0, 100.0, "calibration"), metavar="DB",
+                     help="known recording gain: dBFS of a 1 N bridge-force partial")
+    fit.set_defaults(func=_lazy("cli_fit", "cmd_fit"))
     return parser
 
 
