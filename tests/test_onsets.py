@@ -273,3 +273,75 @@ def test_key_given_by_the_technician() -> None:
     assert at_442.strikes[0].cents_from_key == pytest.approx(expected, abs=1.0)
     with pytest.raises(RecordingError, match="key 20 is outside the compass 21..108"):
         segment(recording(x), key=20)
+
+
+# --- notes rendered by voicer's own engine ---------------------------------------------
+
+@pytest.mark.parametrize("key", [36, 60, 84])
+def test_engine_rendered_note(key, tmp_path) -> None:
+    """One note of the demo instrument, held 6 s (its damper never falls within the
+    rendering): a noiseless, slowly beating unison whose faint upper partials and
+    rounding noise are no onsets, and whose sidelobes are no partials. The key is the
+    one written into the MIDI file (the standard MIDI key numbers, C4 = 60)."""
+    import mido
+
+    from voicer.analysis.audio import load_recording
+    from voicer.cli import main
+
+    mid, wav = tmp_path / "one.mid", tmp_path / "one.wav"
+    song = mido.MidiFile(ticks_per_beat=480)  # 120 bpm: 960 ticks per second
+    track = mido.MidiTrack()
+    song.tracks.append(track)
+    track.append(mido.Message("note_on", note=key, velocity=80, time=240))
+    track.append(mido.Message("note_off", note=key, velocity=64, time=960 * 6))
+    song.save(mid)
+    assert main(["render", "demo", str(mid), "-o", str(wav), "--subtype", "FLOAT", "--tail", "0"]) in (0, None)
+    rec = load_recording(wav)
+    found = find_onsets(rec.samples, rec.sample_rate)
+    # the issue's 10 ms (a bass hammer's contact lasts a few ms)
+    assert len(found) == 1 and found[0] == pytest.approx(0.25, abs=0.010), found
+    (strike,) = segment(rec).strikes
+    assert strike.key == key
+    # the demo instrument is stretch-tuned by a few cents (well under a quarter tone)
+    assert abs(strike.cents_from_key) < 30.0
+
+
+# --- real recordings: an open dataset ----------------------------------------------------
+
+def _periodogram_cents(x: np.ndarray, sample_rate: int, key: int) -> float:
+    """Independent measure of the first partial: the peak of scipy's Hann periodogram of
+    the whole sample (2^20 points) within +-3 % of ET(key), in cents from ET."""
+    from scipy.signal import periodogram
+
+    f, power = periodogram(x, sample_rate, window="hann", nfft=1 << 20)
+    near = (f > 0.97 * et_hz(key)) & (f < 1.03 * et_hz(key))
+    return float(1200 * math.log2(f[near][np.argmax(power[near])] / et_hz(key)))
+
+
+def test_soundfont_piano_keys_and_pitch(tmp_path) -> None:
+    """The sampled grand piano of Debian's fluid-soundfont-gm (FluidR3_GM.sf2, bank 0
+    program 0; 20 notes, root keys 26..108, 32 kHz, each struck at t = 0), written to a
+    WAV file and read back. Source of the keys: the samples' root keys (SoundFont 2.04
+    s. 7.10, 8.1.2: overridingRootKey / byOriginalPitch); their pitch correction is 0.
+    The issue asks for f0 within 15 cents of ET. That holds up to key 99; the top two
+    samples are tuned sharp (stretch tuning, common practice), as scipy's periodogram
+    measures independently (+19.6 cents at key 104, +27.1 at 108), so from key 70 on,
+    where the first partial dominates and that measure applies, the pitch is checked
+    against it, and against 15 cents wherever it is within them."""
+    import soundfile
+
+    from soundfont import fluid_piano_samples
+
+    from voicer.analysis.audio import load_recording
+
+    for s in fluid_piano_samples("left"):
+        path = tmp_path / f"{s.root_key}.wav"
+        soundfile.write(path, s.data.astype(np.float32), s.sample_rate, subtype="FLOAT")
+        (strike,) = segment(load_recording(path)).strikes
+        assert strike.key == s.root_key, (s.name, strike)
+        assert strike.onset_s < 0.015, (s.name, strike.onset_s)
+        reference = _periodogram_cents(s.data, s.sample_rate, s.root_key) if s.root_key >= 70 else 0.0
+        if s.root_key >= 70:
+            assert abs(strike.cents_from_key - reference) < 3.0, (s.name, strike.cents_from_key, reference)
+        if abs(reference) < 15.0:
+            assert abs(strike.cents_from_key) < 15.0, (s.name, strike.cents_from_key)

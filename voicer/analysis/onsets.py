@@ -39,6 +39,8 @@ _BAND_LOW_HZ = 27.0
 _BEAT_S = 0.2           # longest beat period of partials sharing a band (5 Hz apart)
 _FALL_S = 0.04          # a damper's fall is this quick (natural decays are slower)
 _FLOOR_S = 0.1          # smoothing of the band levels for their floor
+_RANGE_DB = 50.0        # ... which is at most this far below the loudest band
+_RANGE_S = 1.0          # ... within this time
 _RISE_MIN = 0.1         # a band counts from this rise of log10(1 + M / floor) on (2 dB)
 _MEDIAN_S = 0.5         # moving median of the flux: the adaptive threshold's base
 _THRESHOLD = 1.0        # ... and the rise above it: e.g. 5 partials each up by 8 dB
@@ -53,8 +55,10 @@ _CHUNK_FRAMES = 2048   # frames per FFT batch (bounds memory on long takes)
 _PITCH_WINDOW_S = 0.5    # analysis window after (and before) the onset: resolves A0's partials
 _BEFORE_SPREAD_HZ = 4.0  # half-width of the mainlobe of that window
 _RISE_DB = 4.0           # a partial counts where it rose this much above what was there
-_SIDELOBE_HZ = 20.0      # a peak within this of one _SIDELOBE_DB stronger is its sidelobe
-_SIDELOBE_DB = 30.0
+_SPECTRUM_RANGE_DB = 60.0  # the floor is at most this far below the strongest peak
+_LEAK_MARGIN_DB = 10.0   # a peak this close above a stronger one's Hann leakage is leakage
+_LEAK_REACH = 25.0       # ... looked for up to this many 1 / T (where it is 90 dB down)
+_CLUSTER_T = 4.0         # one partial per +-this many 1 / T (two strings of a unison)
 _HUM_HARMONICS = 20      # mains harmonics checked (50 or 60 Hz up to 1 or 1.2 kHz)
 _HUM_STEADY_DB = 1.0     # a mains line keeps its level over the window
 _CELL_CENTS = 5.0        # log-frequency grid of the comb
@@ -65,6 +69,7 @@ _HIT_DB = 12.0           # a partial stands this far above the floor (noise: 1e-
 _CAP_DB = 40.0           # no single partial outweighs the series
 _CLEAR_DB = 20.0         # a first partial this prominent is measured, not inferred
 _MISS_DB = 10.0          # cost of a predicted partial missing
+_UNEXPLAINED_RANGE_DB = 30.0  # ... counted from this far below the strongest peak on
 _UNEXPLAINED = 0.5       # cost per dB of a partial within a series' range it does not explain
 _TOL_CENTS = 15.0        # a partial is found this close to its prediction (or 1.5 bins)
 _COARSE_PARTIALS = 12    # partials of the comb, at most
@@ -119,34 +124,46 @@ def _flux(samples: NDArray[np.float64], sample_rate: int) -> tuple[NDArray[np.fl
         c = min(_CHUNK_FRAMES, n_frames - s)
         power = _frames_stft(x, n_fft, hop, window, s, c) ** 2
         bands[s : s + c] = np.sqrt(np.add.reduceat(power[:, used], starts, axis=1))
-    # Compression log(1 + M / floor), the floor per band being its quietest 0.1 s mean
-    # over the frames inside the recording (minimum statistics, Martin 2001, IEEE TSAP 9):
-    # noise and steady tones (hum) sit near log(2) and barely move; a partial rising 12 dB
-    # above what sounded before moves by ~0.6 wherever it stands above the noise.
+    # Compression log(1 + M / floor). The floor of a band is its quietest 0.1 s mean over
+    # the frames inside the recording (minimum statistics, Martin 2001, IEEE TSAP 9), but
+    # never more than _RANGE_DB below the loudest band within _RANGE_S: a noiseless
+    # recording (a rendered note, a clean sample) has no floor of its own, and changes far
+    # below the note (a unison's slow beats in its faint upper partials, rounding noise)
+    # would otherwise count as much as a strike. Noise and steady tones (hum) sit near
+    # log(2) and barely move; a partial rising 12 dB above what sounded before moves by
+    # ~0.6 wherever it stands above the floor.
     inner = bands[min(n_frames - 1, n_fft // 2 // hop) : max(1, n_frames - n_fft // 2 // hop)]
     smooth = max(1, min(len(inner), round(_FLOOR_S / _HOP_S)))
     sums = np.cumsum(np.concatenate([np.zeros((1, bands.shape[1])), inner]), axis=0)
-    floor = ((sums[smooth:] - sums[:-smooth]) / smooth).min(axis=0)
-    floor = np.maximum(floor, 1e-6 * float(bands.max()) + 1e-30).astype(np.float32)
-    level = np.log10(1.0 + bands / floor)
+    noise = ((sums[smooth:] - sums[:-smooth]) / smooth).min(axis=0)
+    loudest = _running_max(bands.max(axis=1).astype(np.float64), max(1, round(_RANGE_S / _HOP_S)))
+    floor = np.maximum(noise[None, :], (10.0 ** (-_RANGE_DB / 20.0) * loudest + 1e-30)[:, None])
+    floor = floor.astype(np.float32)
+
+    def level(m: NDArray[np.float32]) -> NDArray[np.float32]:
+        """Compressed level of magnitudes m per frame, against that frame's floor."""
+        return np.log10(1.0 + m / floor)
+
     # The rise of each band is taken over its largest level in the previous _BEAT_S, not
     # the previous frame: partials sharing a band (a bass note's, closer than the window
     # resolves; two notes' a few Hz apart, whose beating ends when a damper stops one)
-    # beat, which is not an onset. Less _RISE_MIN, so that noise adds nothing.
+    # beat, which is not an onset. Less _RISE_MIN, so that noise adds nothing. Both
+    # levels are taken against the same (this frame's) floor.
     # Before the recording the level is the band's usual quiet level (its 20th percentile):
     # a note struck at the very start is an onset, noise at the start is not.
     lag = max(1, math.ceil(_BEAT_S / _HOP_S))
-    lead = np.repeat(np.percentile(level, 20, axis=0)[None, :], lag, axis=0).astype(np.float32)
-    padded = np.concatenate([lead, level[:-1]])
+    lead = np.repeat(np.percentile(bands, 20, axis=0)[None, :], lag, axis=0).astype(np.float32)
+    padded = np.concatenate([lead, bands[:-1]])
     recent = sliding_window_view(padded, lag, axis=0).max(axis=2)
-    rise = np.maximum(level - recent - _RISE_MIN, 0.0).sum(axis=1, dtype=np.float64)
+    now = level(bands)
+    rise = np.maximum(now - level(recent) - _RISE_MIN, 0.0).sum(axis=1, dtype=np.float64)
     # A damper stopping a note lowers many bands within tens of ms, and where its partials
     # shared a band with another note's, the band can rise as their interference ends: a
     # frame whose bands fell more within _FALL_S than they rose (over +-30 ms) is no onset.
     short = max(1, math.ceil(_FALL_S / _HOP_S))
-    lowest = sliding_window_view(np.concatenate([level[:1].repeat(short, axis=0), level[:-1]]), short,
+    lowest = sliding_window_view(np.concatenate([bands[:1].repeat(short, axis=0), bands[:-1]]), short,
                                  axis=0).min(axis=2)
-    fall = np.maximum(lowest - level - _RISE_MIN, 0.0).sum(axis=1, dtype=np.float64)
+    fall = np.maximum(level(lowest) - now - _RISE_MIN, 0.0).sum(axis=1, dtype=np.float64)
     near = max(1, round(0.03 / _HOP_S))
     fall = sliding_window_view(np.pad(fall, near, mode="edge"), 2 * near + 1).max(axis=1)
     flux = np.where(rise > fall, rise, 0.0)
@@ -155,7 +172,9 @@ def _flux(samples: NDArray[np.float64], sample_rate: int) -> tuple[NDArray[np.fl
 
 
 def _moving_median(x: NDArray[np.float64], half: int) -> NDArray[np.float64]:
-    padded = np.pad(x, half, mode="reflect" if len(x) > half else "edge")
+    # (reflected, also where x is shorter than the window: copies of its ends would
+    # outvote a short note's one onset)
+    padded = np.pad(x, half, mode="reflect" if len(x) > 1 else "edge")
     return np.median(sliding_window_view(padded, 2 * half + 1), axis=1)
 
 
@@ -236,17 +255,21 @@ def _crossing(samples: NDArray[np.float64], sample_rate: int, lo: int, hi: int, 
     return t + offset
 
 
-def _refine(samples: NDArray[np.float64], sample_rate: int, lo: int, hi: int) -> float:
+def _refine(samples: NDArray[np.float64], sample_rate: int, lo: int, hi: int) -> float | None:
     """Time (s) of the attack within samples [lo, hi), in three steps: the window of the
     detection (which separates a soft note's partials from those of a loud one still
     ringing), then ~23 and ~5 ms windows within an eighth of the previous window of its
-    estimate, each kept where it sees the rise."""
+    estimate, each kept where it sees the rise. None where the window of the detection
+    sees no lasting rise: the flux peak was no strike but a note stopping short (a damper
+    on a loud note, the end of a rendering), whose splatter across the bands dies with it."""
     t = (lo + hi) / 2
     span = (lo, hi)
     for window_s in (_FRAME_S, _MEDIUM_S, _FINE_S):
         found = _crossing(samples, sample_rate, span[0], span[1], window_s)
         if found is not None:
             t = found
+        elif window_s == _FRAME_S:
+            return None
         eighth = round(window_s * sample_rate / 8)
         span = (round(t) - eighth, round(t) + eighth)
     return max(0.0, t / sample_rate)
@@ -283,7 +306,9 @@ def find_onsets(samples: ArrayLike, sample_rate: int, *, min_gap_s: float = 0.08
         if i + 1 < len(peaks):
             hi = min(hi, (peaks[i + 1] + k) * hop // 2)
         # (before the start is zero: a note struck at once is found at 0)
-        times.append(_refine(x, sample_rate, lo, min(len(x), hi)))
+        t = _refine(x, sample_rate, lo, min(len(x), hi))
+        if t is not None:
+            times.append(t)
     return np.array(times, dtype=np.float64)
 
 
@@ -382,7 +407,9 @@ def _analyse(seg: NDArray[np.float64], sample_rate: int, before: NDArray[np.floa
     n_fft = 1 << int(math.ceil(math.log2(2 * len(seg))))
     df = sample_rate / n_fft
     db = _spectrum_db(seg, n_fft)
-    floor = _floor_db(db, max(64, round(200.0 / df)))
+    # the noise floor, but within _SPECTRUM_RANGE_DB of the strongest peak: a noiseless
+    # spectrum (a rendered note, a clean sample) would otherwise make everything stand out
+    floor = np.maximum(_floor_db(db, max(64, round(200.0 / df))), float(db.max()) - _SPECTRUM_RANGE_DB)
     prominence = np.clip(db - floor, 0.0, _CAP_DB)
     hidden_bins = _mains_lines(seg, n_fft, df, db)
     if before is not None and len(before) >= round(0.05 * sample_rate):
@@ -399,22 +426,61 @@ def _analyse(seg: NDArray[np.float64], sample_rate: int, before: NDArray[np.floa
         hidden_bins |= ~rose & (prior >= floor + _HIT_DB)
     prominence[hidden_bins] = 0.0
     # Partials: peak bins standing _HIT_DB out (noise maxima stay below: ~1e-5 per bin)
-    # and not a sidelobe of a stronger peak (Hann sidelobes are >= 31 dB down and fall
-    # below the floor within _SIDELOBE_HZ).
+    # that are neither the leakage of a stronger peak nor a weaker member of its cluster.
     is_peak = np.r_[False, (db[1:-1] >= db[:-2]) & (db[1:-1] > db[2:]), False]
-    is_peak &= db >= _running_max(db, round(_SIDELOBE_HZ / df)) - _SIDELOBE_DB
-    peak = np.where(is_peak & (prominence >= _HIT_DB), prominence, 0.0)
+    candidates = np.flatnonzero(is_peak & (prominence >= _HIT_DB))
+    masked = _leaked(candidates, db, df, len(seg) / sample_rate)
+    peak = np.zeros(len(db))
+    peak[candidates[~masked]] = prominence[candidates[~masked]]
     cells_hz, searched, covered = _grid(n_fft, sample_rate)
     evidence = np.maximum.reduceat(peak, searched)[::2]
     held = np.maximum.reduceat(prominence, covered)[::2] >= _HIT_DB
     hidden = np.maximum.reduceat(hidden_bins, covered)[::2]
-    mass = np.r_[0.0, np.cumsum(peak)]
+    # What a series leaves unexplained counts from _UNEXPLAINED_RANGE_DB below the
+    # strongest peak on (amplitude-weighted, as in the two-way mismatch): noise peaks of
+    # the knock and the weak members of clusters around a few strong treble partials
+    # are no partials another series should account for.
+    loud = np.clip(db - max(float(db.max()) - _UNEXPLAINED_RANGE_DB, -np.inf), 0.0, None)
+    mass = np.r_[0.0, np.cumsum(np.minimum(peak, loud))]
     pad = _COMB_REACH
     busy = np.r_[0, np.cumsum(held), np.full(pad, int(held.sum()))].astype(np.int32)
     return _Spectrum(db, prominence, df, cells_hz, np.r_[evidence, np.zeros(pad)], busy,
                      np.r_[mass[searched[0::2]], np.full(pad, mass[-1])],
                      np.r_[mass[searched[1::2]], np.full(pad, mass[-1])],
                      np.r_[hidden, np.zeros(pad, dtype=bool)])
+
+
+def _hann_leakage_db(u: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Envelope of the Hann window's sidelobes at u = frequency offset times window
+    length (u >= 2, past the mainlobe), dB re its peak: |W(u)| = |sinc(u)| / |1 - u^2|
+    (Harris 1978, Proc. IEEE 66), whose envelope is 1 / (pi u (u^2 - 1)): -31.5 dB at
+    the first sidelobe (u = 2.5), then 18 dB per octave."""
+    return -20.0 * np.log10(np.pi * u * (u**2 - 1.0))
+
+
+def _leaked(peaks: NDArray[np.int64], db: NDArray[np.float64], df: float, length_s: float) -> NDArray[np.bool_]:
+    """Which of the peak bins ``peaks`` (ascending) are no partial of their own: within
+    _CLUSTER_T / T or _TOL_CENTS of a stronger peak (the unresolved strings of a unison
+    and their beating make a cluster of peaks, one partial), or below the Hann leakage of
+    a stronger peak plus _LEAK_MARGIN_DB (the sidelobes of a partial decaying within the
+    window stand a little above those of a steady sine). T is the window's length."""
+    if len(peaks) < 2:
+        return np.zeros(len(peaks), dtype=bool)
+    f = peaks * df
+    reach = np.maximum(_LEAK_REACH / length_s, f * (2.0 ** (_TOL_CENTS / 1200.0) - 1.0))
+    lo = np.searchsorted(f, f - reach)
+    hi = np.searchsorted(f, f + reach, side="right")
+    q = np.repeat(np.arange(len(f)), hi - lo)                      # each peak ...
+    p = np.arange(len(q)) - np.repeat(np.cumsum(hi - lo) - (hi - lo), hi - lo) + np.repeat(lo, hi - lo)
+    stronger = db[peaks[p]] > db[peaks[q]]                          # ... against its neighbours
+    q, p = q[stronger], p[stronger]
+    delta = np.abs(f[p] - f[q])
+    cluster = np.maximum(_CLUSTER_T / length_s, f[q] * (2.0 ** (_TOL_CENTS / 1200.0) - 1.0))
+    u = np.maximum(delta * length_s, 2.0 + 1e-9)
+    hit = (delta < cluster) | (db[peaks[q]] < db[peaks[p]] + _hann_leakage_db(u) + _LEAK_MARGIN_DB)
+    masked = np.zeros(len(f), dtype=bool)
+    masked[q[hit]] = True
+    return masked
 
 
 def _mains_lines(seg: NDArray[np.float64], n_fft: int, df: float, db: NDArray[np.float64]) -> NDArray[np.bool_]:
