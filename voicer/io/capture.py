@@ -41,6 +41,7 @@ import soundfile
 from numpy.typing import NDArray
 
 from ..errors import ParameterError, RecordingError, VoicerError
+from .devices import format_device_table, import_sounddevice, list_devices, resolve_device
 
 #: Frames per callback of both sources (21 ms at 48 kHz).
 DEFAULT_INPUT_BLOCK = 1024
@@ -181,13 +182,7 @@ class InputGuard:
 
 
 def _import_sounddevice() -> ModuleType:
-    try:
-        import sounddevice
-    except OSError as exc:  # sounddevice raises OSError when it cannot load the PortAudio library
-        raise VoicerError(f"recording from a device needs PortAudio ({exc}): install the Debian package "
-                          "libportaudio2 (apt-get install libportaudio2); --input-file replays a recording "
-                          "without it") from exc
-    return sounddevice
+    return import_sounddevice("recording from a device needs", "--input-file replays a recording without it")
 
 
 class PortAudioInput:
@@ -428,32 +423,13 @@ def list_input_devices() -> list[dict[str, Any]]:
     VoicerError
         If PortAudio is missing (saying which Debian package to install).
     """
-    sd = _import_sounddevice()
-    try:
-        default = int(sd.query_devices(kind="input")["index"])
-    except sd.PortAudioError:  # PortAudio has no default input device
-        default = -1
-    hostapis = sd.query_hostapis()
-    return [
-        {"index": index, "name": info["name"], "hostapi": hostapis[info["hostapi"]]["name"],
-         "channels": int(info["max_input_channels"]), "default_samplerate_hz": float(info["default_samplerate"]),
-         "default": index == default}
-        for index, info in enumerate(sd.query_devices())
-        if info["max_input_channels"] > 0
-    ]
+    return list_devices(_import_sounddevice(), "input")
 
 
 def format_input_devices(devices: list[dict[str, Any]]) -> str:
     """A table of the result of :func:`list_input_devices`."""
-    if not devices:
-        return "no audio input devices found (PortAudio sees none); --input-file replays a recording without one"
-    width = max(len(d["name"]) for d in devices)
-    lines = ["audio input devices (* = default):"]
-    for d in devices:
-        mark = "*" if d["default"] else " "
-        lines.append(f"{mark} {d['index']:>3}  {d['name']:<{width}}  {d['hostapi']:<6} "
-                     f"{d['channels']:>4} ch  {d['default_samplerate_hz']:>7.0f} Hz")
-    return "\n".join(lines)
+    return format_device_table(devices, "input", none_found="no audio input devices found (PortAudio sees none); "
+                                                           "--input-file replays a recording without one")
 
 
 def resolve_input_device(spec: int | str | None) -> int:
@@ -473,27 +449,4 @@ def resolve_input_device(spec: int | str | None) -> int:
         none or several; the message names the device and lists the available ones.
     """
     sd = _import_sounddevice()
-    devices = list_input_devices()
-    wanted = "default audio input device" if spec is None else f"audio input device {spec!r}"
-    if not devices:
-        raise VoicerError(f"{wanted} not found: PortAudio sees no input device; {_DEVICE_HELP}")
-    available = ", ".join(f"[{d['index']}] {d['name']}" for d in devices)
-    if spec is None:
-        chosen = [d["index"] for d in devices if d["default"]]
-        if not chosen:
-            raise VoicerError(f"no {wanted} is set (available: {available}); {_DEVICE_HELP}")
-        return int(chosen[0])
-    if isinstance(spec, str) and spec.strip().isdigit():
-        spec = int(spec)
-    if isinstance(spec, (int, np.integer)) and not isinstance(spec, bool):
-        if any(d["index"] == spec for d in devices):
-            return int(spec)
-        raise VoicerError(f"{wanted} not found: no input device has that index (available: {available}); "
-                          f"{_DEVICE_HELP}")
-    if not isinstance(spec, str) or not spec.strip():
-        raise VoicerError(f"{wanted}: give a device index or a part of its name; {_DEVICE_HELP}")
-    try:
-        return int(sd.query_devices(spec, kind="input")["index"])
-    except ValueError as exc:  # sounddevice: no device or several devices match
-        reason = str(exc).replace("\n", "; ")
-        raise VoicerError(f"{wanted} not found: {reason} (available: {available}); {_DEVICE_HELP}") from exc
+    return resolve_device(sd, list_input_devices(), spec, "input", help=_DEVICE_HELP)

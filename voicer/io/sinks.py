@@ -38,6 +38,7 @@ from numpy.typing import NDArray
 
 from ..engine.host import BlockCallback
 from ..errors import ParameterError, VoicerError
+from .devices import format_device_table, import_sounddevice, list_devices, resolve_device
 
 #: File extensions a :class:`FileSink` accepts, and the soundfile format of each.
 FILE_FORMATS: dict[str, str] = {".wav": "WAV", ".flac": "FLAC"}
@@ -333,12 +334,7 @@ class GuardedCallback:
 
 
 def _import_sounddevice() -> ModuleType:
-    try:
-        import sounddevice
-    except OSError as exc:  # sounddevice raises OSError when it cannot load the PortAudio library
-        raise VoicerError(f"live audio needs PortAudio ({exc}): install the Debian package libportaudio2 "
-                          "(apt-get install libportaudio2); `voicer render` writes audio files without it") from exc
-    return sounddevice
+    return import_sounddevice("live audio needs", "`voicer render` writes audio files without it")
 
 
 class PortAudioSink:
@@ -489,32 +485,13 @@ def list_output_devices() -> list[dict[str, Any]]:
     VoicerError
         If PortAudio is missing (saying which Debian package to install).
     """
-    sd = _import_sounddevice()
-    try:
-        default = int(sd.query_devices(kind="output")["index"])
-    except sd.PortAudioError:  # PortAudio has no default output device
-        default = -1
-    hostapis = sd.query_hostapis()
-    return [
-        {"index": index, "name": info["name"], "hostapi": hostapis[info["hostapi"]]["name"],
-         "channels": int(info["max_output_channels"]), "default_samplerate_hz": float(info["default_samplerate"]),
-         "default": index == default}
-        for index, info in enumerate(sd.query_devices())
-        if info["max_output_channels"] > 0
-    ]
+    return list_devices(_import_sounddevice(), "output")
 
 
 def format_devices(devices: list[dict[str, Any]]) -> str:
     """Text of ``voicer devices`` for the result of :func:`list_output_devices`."""
-    if not devices:
-        return "no audio output devices found (PortAudio sees none); `voicer render` writes audio files without one"
-    width = max(len(d["name"]) for d in devices)
-    lines = ["audio output devices (* = default):"]
-    for d in devices:
-        mark = "*" if d["default"] else " "
-        lines.append(f"{mark} {d['index']:>3}  {d['name']:<{width}}  {d['hostapi']:<6} "
-                     f"{d['channels']:>4} ch  {d['default_samplerate_hz']:>7.0f} Hz")
-    return "\n".join(lines)
+    return format_device_table(devices, "output", none_found="no audio output devices found (PortAudio sees none); "
+                                                            "`voicer render` writes audio files without one")
 
 
 def resolve_output_device(spec: int | str | None) -> int:
@@ -535,27 +512,4 @@ def resolve_output_device(spec: int | str | None) -> int:
         and ``voicer render``.
     """
     sd = _import_sounddevice()
-    devices = list_output_devices()
-    wanted = "default audio output device" if spec is None else f"audio output device {spec!r}"
-    if not devices:
-        raise VoicerError(f"{wanted} not found: PortAudio sees no output device; {_DEVICE_HELP}")
-    available = ", ".join(f"[{d['index']}] {d['name']}" for d in devices)
-    if spec is None:
-        chosen = [d["index"] for d in devices if d["default"]]
-        if not chosen:
-            raise VoicerError(f"no {wanted} is set (available: {available}); {_DEVICE_HELP}")
-        return int(chosen[0])
-    if isinstance(spec, str) and spec.strip().isdigit():
-        spec = int(spec)
-    if isinstance(spec, (int, np.integer)) and not isinstance(spec, bool):
-        if any(d["index"] == spec for d in devices):
-            return int(spec)
-        raise VoicerError(f"{wanted} not found: no output device has that index (available: {available}); "
-                          f"{_DEVICE_HELP}")
-    if not isinstance(spec, str) or not spec.strip():
-        raise VoicerError(f"{wanted}: give a device index or a part of its name; {_DEVICE_HELP}")
-    try:
-        return int(sd.query_devices(spec, kind="output")["index"])
-    except ValueError as exc:  # sounddevice: no device or several devices match
-        reason = str(exc).replace("\n", "; ")
-        raise VoicerError(f"{wanted} not found: {reason} (available: {available}); {_DEVICE_HELP}") from exc
+    return resolve_device(sd, list_output_devices(), spec, "output", help=_DEVICE_HELP)
