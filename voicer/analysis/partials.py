@@ -46,7 +46,10 @@ Method
   that cannot be found. Then re-centre: search all n again around the fitted series and
   refit until the assignment no longer changes.
 * **Robust fit**: a least-median-of-squares start over all pairs of peaks (in cents),
-  then weighted least squares (weights 1/sigma^2 from each peak's SNR) with peaks whose
+  then weighted least squares (weights 1/sigma^2 from each peak's SNR combined with the
+  series' own scatter about the formula, estimated from the residuals: a real bass string
+  departs from it by a cent or two, far more than its strongest partials' measurement
+  uncertainty, which would otherwise be the ones rejected) with peaks whose
   normalised residual exceeds 4 robust standard deviations (1.4826 MAD, at least 1)
   rejected and the rest refitted. Covariances are scaled by the Birge ratio
   ``max(1, chi^2 / dof)`` so that a series that departs from the formula (a real piano's
@@ -362,13 +365,21 @@ def _robust_fit(
 ) -> tuple[_Fit, NDArray[np.bool_]]:
     """Weighted fit with outliers rejected; returns the fit and the inlier mask.
 
-    Peaks whose residual exceeds ``_REJECT_SIGMAS`` robust standard deviations of the
-    normalised residuals (1.4826 MAD, never below 1) are rejected and the rest refitted
-    until the set is stable; ``start`` is the first inlier set (a least-median start over
-    all pairs if None). The covariance is scaled by the Birge ratio ``max(1, chi^2/dof)``.
+    Each peak's uncertainty is its measurement's combined with the scatter of the series
+    about the formula (``scatter`` cents, the same for every peak): a real string departs
+    from ``f_n = n f0 sqrt(1 + B n^2)`` by a cent or two (coupling to the bridge, unisons),
+    far more than its strong partials' measurement uncertainty, and without this term the
+    strongest partials would be the ones rejected. The scatter is estimated from the inliers'
+    residuals (1.4826 MAD in cents, less what the measurements explain), so an exact series
+    keeps its full weighting. Peaks whose residual exceeds ``_REJECT_SIGMAS`` robust
+    standard deviations of the normalised residuals (1.4826 MAD, never below 1) are rejected
+    and the rest refitted until the set and the scatter are stable; ``start`` is the first
+    inlier set (a least-median start over all pairs if None). The covariance is scaled by
+    the Birge ratio ``max(1, chi^2/dof)``.
     """
     x, y = n * n, (f / n) ** 2
-    w = 1.0 / (2.0 * f * sigma_hz / (n * n)) ** 2
+    per_cent = math.log(2.0) / 1200.0  # relative frequency of one cent
+    meas_cents = sigma_hz / (f * per_cent)
     rejecting = n.size >= _MIN_FOR_REJECTION
     if not rejecting:
         inl = np.ones(n.size, dtype=bool)
@@ -378,16 +389,24 @@ def _robust_fit(
         inl = start.copy()
     if inl.sum() < 2:
         inl = np.ones(n.size, dtype=bool)
-    for _ in range(10):
-        p, cov = _wls(x[inl], y[inl], w[inl])
-        z = (f - n * np.sqrt(np.maximum(p[0] + p[1] * x, 1e-300))) / sigma_hz
+    scatter = 0.0
+    for _ in range(20):
+        sigma = np.hypot(sigma_hz, f * scatter * per_cent)
+        p, cov = _wls(x[inl], y[inl], 1.0 / (2.0 * f[inl] * sigma[inl] / (n[inl] * n[inl])) ** 2)
+        resid = f - n * np.sqrt(np.maximum(p[0] + p[1] * x, 1e-300))
+        z = resid / sigma
         if not rejecting:
             break
-        scale = max(1.0, 1.4826 * float(np.median(np.abs(z[inl]))))
-        new = np.abs(z) <= _REJECT_SIGMAS * scale
-        if new.sum() < 2 or np.array_equal(new, inl):
+        spread = 1.4826 * float(np.median(np.abs(resid[inl] / (f[inl] * per_cent))))
+        new_scatter = math.sqrt(max(spread**2 - float(np.median(meas_cents[inl] ** 2)), 0.0))
+        new_sigma = np.hypot(sigma_hz, f * new_scatter * per_cent)
+        z_new = resid / new_sigma
+        scale = max(1.0, 1.4826 * float(np.median(np.abs(z_new[inl]))))
+        new = np.abs(z_new) <= _REJECT_SIGMAS * scale
+        settled = abs(new_scatter - scatter) <= 0.05 * max(scatter, 1e-3)
+        if new.sum() < 2 or (np.array_equal(new, inl) and settled):
             break
-        inl = new
+        inl, scatter = new, new_scatter
     dof = int(inl.sum()) - 2
     if dof > 0:
         cov = cov * max(1.0, float(np.sum(z[inl] ** 2)) / dof)
