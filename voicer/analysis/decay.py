@@ -341,6 +341,10 @@ class DecayFit:
         Beat rate of a mistuned unison when the envelope clearly beats, else None.
     residual_db : float
         Root-mean-square misfit over the fitted part, dB (unweighted).
+    level_uncertainty_db : float
+        Standard error of ``level_db`` (same covariance as the T60's). A level is far
+        better determined than a decay time: a real note's envelope that beats or bends
+        leaves T60 uncertain by tens of percent but its onset level within a dB or so.
     quality : {'good', 'fair', 'poor'}
         ``good``: at least 20 dB of decay seen above the noise (plus margin) and a standard
         error of T60 within 1.5 %, so that the issue's 5 % holds at 3.3 standard errors;
@@ -358,6 +362,7 @@ class DecayFit:
     beat_hz: float | None
     residual_db: float
     quality: str
+    level_uncertainty_db: float
 
 
 @dataclass(frozen=True)
@@ -762,7 +767,7 @@ def _fit_window(t: NDArray[np.float64], y: NDArray[np.float64], noise_db: float 
 
 
 def _nothing() -> DecayFit:
-    return DecayFit(math.nan, math.nan, math.nan, None, None, None, None, math.nan, "poor")
+    return DecayFit(math.nan, math.nan, math.nan, None, None, None, None, math.nan, "poor", math.nan)
 
 
 def fit_decay(
@@ -884,7 +889,9 @@ def _report(model: _Model, data: _Data, ref: float) -> DecayFit:
     knee = after_level = after_t60 = beat_hz = None
     if model.name == "two":
         (g1, s1), (g2, s2) = _order_stages(model)
-        rate_var = cov[1, 1] if model.full[1] >= model.full[3] else cov[3, 3]
+        prompt = 0 if model.full[1] >= model.full[3] else 2
+        rate_var = cov[prompt + 1, prompt + 1]
+        level_var = cov[prompt, prompt]
         level = g1 * DB_PER_NEPER + ref
         knee = float((g1 - g2) / (s1 - s2))
         after_level = float(g2 * DB_PER_NEPER + ref)
@@ -894,8 +901,13 @@ def _report(model: _Model, data: _Data, ref: float) -> DecayFit:
     else:
         g1, s1 = model.full[:2]
         rate_var = cov[1, 1]
+        level_var = cov[0, 0]
         if model.name == "beat":
             level = 10.0 * math.log10(math.exp(2 * g1) + math.exp(2 * model.full[2])) + ref
+            # power-sum level: d level / d g_i = DB_PER_NEPER w_i, w_i the power fractions
+            w = np.array([1.0, math.exp(2 * (model.full[2] - g1))])
+            w /= w.sum()
+            level_var = float(w @ cov[np.ix_([0, 2], [0, 2])] @ w)
             beat_hz = float(abs(model.full[6]))
         else:
             level = g1 * DB_PER_NEPER + ref
@@ -910,4 +922,5 @@ def _report(model: _Model, data: _Data, ref: float) -> DecayFit:
         quality = "poor"
     return DecayFit(level_db=float(level), t60_s=t60, t60_uncertainty_s=t60_err, knee_s=knee,
                     after_level_db=after_level, after_t60_s=after_t60, beat_hz=beat_hz,
-                    residual_db=residual_db, quality=quality)
+                    residual_db=residual_db, quality=quality,
+                    level_uncertainty_db=DB_PER_NEPER * math.sqrt(max(float(level_var), 0.0)))

@@ -10,7 +10,7 @@ dynamics then tell the felt's exponent.
 
 from __future__ import annotations
 
-__all__ = ["DYNAMIC_VELOCITY", "FitResult", "dynamic_of", "fit_key", "fit_recordings"]
+__all__ = ["DYNAMIC_VELOCITY", "UNDECAYED_T60_S", "FitResult", "dynamic_of", "fit_key", "fit_recordings"]
 
 import datetime as _dt
 import re
@@ -26,12 +26,16 @@ from ..tone.tables import TableSettings
 from ..tone.velocity import hammer_speed
 from .felt_fit import FeltFit, StrikeLevels, fit_felt
 from .losses import LossFit, fit_losses
-from .note import NoteAnalysis, RecordingAnalysis
+from .note import NoteAnalysis, RecordingAnalysis, has_level
 from .preset_out import KeyFit, fitted_preset
 
 #: MIDI velocities taken for dynamic markings in file names (common practice, approximate:
 #: the markings are the player's, the velocities a middle reading of each).
 DYNAMIC_VELOCITY = {"ppp": 16, "pp": 28, "p": 44, "mp": 58, "mf": 72, "f": 88, "ff": 104, "fff": 118}
+#: T60 stored for an aftersound that did not decay measurably within the note: longer than
+#: any piano partial rings (the longest bass aftersounds last some tens of seconds, from
+#: memory), so the replay holds it as measured, without inventing a decay.
+UNDECAYED_T60_S = 100.0
 _DYNAMIC = re.compile(r"(?:^|[-_ .])(" + "|".join(sorted(DYNAMIC_VELOCITY, key=len, reverse=True)) + r")(?=$|[-_ .])")
 
 
@@ -82,7 +86,7 @@ def fit_key(base: Preset, key: int, notes: Sequence[NoteAnalysis], *, calibratio
     for n in usable:
         mark = dynamic_of(n.path)
         prior = float(hammer_speed(DYNAMIC_VELOCITY[mark], base.instrument)) if mark else None
-        parts = [p for p in n.partials if p.decay_quality != "poor"]
+        parts = [p for p in n.partials if has_level(p)]
         levels.append(StrikeLevels(n=np.array([p.n for p in parts], dtype=np.int64),
                                    level_db=np.array([p.level_db for p in parts]),
                                    take=str(Path(n.path).parent), speed_prior_m_s=prior))
@@ -102,16 +106,26 @@ def fit_key(base: Preset, key: int, notes: Sequence[NoteAnalysis], *, calibratio
     if felt is not None:
         j = usable.index(best)
         gain = felt.gain_db[str(Path(best.path).parent)]
+        # Replayed: every partial with a level and a measured decay, kept even where its T60
+        # is too uncertain to fit losses to (the best estimate there is); an aftersound that
+        # does not decay measurably within the note is held at UNDECAYED_T60_S.
+        replay = [p for p in best.partials if has_level(p) and 0 < p.t60_s < UNDECAYED_T60_S]
+
         measured = {
             "speed_m_s": round(felt.speeds_m_s[j], 4),
-            "n": [p.n for p in parts],
-            "freq_hz": [round(p.freq_hz, 4) for p in parts],
-            "level_db": [round(p.level_db - gain, 2) for p in parts],
-            "t60_s": [round(p.t60_s, 4) for p in parts],
+            "n": [p.n for p in replay],
+            "freq_hz": [round(p.freq_hz, 4) for p in replay],
+            "level_db": [round(p.level_db - gain, 2) for p in replay],
+            "t60_s": [round(p.t60_s, 4) for p in replay],
             "after_level_db": [_nan(None if p.after_level_db is None else round(p.after_level_db - gain, 2))
-                               for p in parts],
-            "after_t60_s": [_nan(None if p.after_t60_s is None else round(p.after_t60_s, 4)) for p in parts],
+                               for p in replay],
+            "after_t60_s": [_nan(None if p.after_t60_s is None else round(min(p.after_t60_s, UNDECAYED_T60_S), 4))
+                            for p in replay],
         }
+        flat = [p.n for p in replay if (p.after_t60_s or 0.0) > UNDECAYED_T60_S]
+        if flat:
+            remarks.append(f"aftersound of partial(s) {', '.join(map(str, flat))} did not decay measurably "
+                           f"within the note: stored with T60 {UNDECAYED_T60_S:g} s")
     quality = best.quality
     return KeyFit(key=key, sources=tuple((n.path, n.onset_s) for n in notes), first_partial_hz=f1,
                   cents_from_et=cents, b=b, b_uncertainty=b_unc, strike_ratio=beta, strike_uncertainty=beta_unc,

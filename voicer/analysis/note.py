@@ -8,7 +8,7 @@ out of every note's partials.
 
 from __future__ import annotations
 
-__all__ = ["PartialResult", "NoteAnalysis", "RecordingAnalysis", "analyze_note", "analyze_recording"]
+__all__ = ["MAX_LEVEL_UNCERTAINTY_DB", "has_level", "PartialResult", "NoteAnalysis", "RecordingAnalysis", "analyze_note", "analyze_recording"]
 
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -28,6 +28,9 @@ from .strike import StrikeFit, fit_strike_ratio
 #: Partials analysed per note at most (beyond ~40 a recording's partials are mostly room
 #: and noise, and the hammer's spectrum is far down).
 MAX_PARTIALS = 40
+#: A partial's onset level is used (strike ratio, felt) when known to within this, dB: a
+#: real note's beating or bending envelope leaves its T60 uncertain long before its level.
+MAX_LEVEL_UNCERTAINTY_DB = 6.0
 #: A note's analysis window ends this long after its onset at the latest (long enough for
 #: the aftersound of the bass, short enough to keep the analysis fast).
 MAX_NOTE_S = 8.0
@@ -38,12 +41,14 @@ class PartialResult:
     """One partial of a note: where it is and how it decays.
 
     Levels are dB re full scale of a unit sine (the recording's own scale); ``t60_s`` is
-    the prompt stage (the only one when single).
+    the prompt stage (the only one when single). ``decay_quality`` is that of the T60;
+    the level's own standard error is ``level_uncertainty_db`` (see :func:`has_level`).
     """
 
     n: int
     freq_hz: float
     level_db: float
+    level_uncertainty_db: float
     t60_s: float
     t60_uncertainty_s: float
     knee_s: float | None
@@ -85,6 +90,11 @@ class RecordingAnalysis:
     skipped: tuple[tuple[float, str], ...]
 
 
+def has_level(p: PartialResult) -> bool:
+    """True when the partial's onset level is known well enough to fit to."""
+    return bool(np.isfinite(p.level_db) and p.level_uncertainty_db <= MAX_LEVEL_UNCERTAINTY_DB)
+
+
 def _quality(series: SeriesFit, partials: list[PartialResult]) -> str:
     """``good``: 8 or more partials with B known to 5 %; ``fair``: 4 or more partials;
     ``poor``: fewer (a pitch without a usable series)."""
@@ -108,12 +118,13 @@ def analyze_note(recording: Recording, strike: Strike, *, exclude_hz: tuple[floa
     partials = []
     for j, peak in enumerate(peaks):
         d: DecayFit = fit_decay(env.t_s, env.level_db[j], noise_db=float(env.noise_db[j]))
-        partials.append(PartialResult(n=peak.n, freq_hz=peak.freq_hz, level_db=d.level_db, t60_s=d.t60_s,
+        partials.append(PartialResult(n=peak.n, freq_hz=peak.freq_hz, level_db=d.level_db,
+                                      level_uncertainty_db=d.level_uncertainty_db, t60_s=d.t60_s,
                                       t60_uncertainty_s=d.t60_uncertainty_s, knee_s=d.knee_s, after_level_db=d.after_level_db, after_t60_s=d.after_t60_s,
                                       beat_hz=d.beat_hz, decay_quality=d.quality))
     strike_fit = None
-    # Levels of partials whose decay could not be followed are left out (not guessed).
-    levelled = [p for p in partials if np.isfinite(p.level_db) and p.decay_quality != "poor"]
+    # Levels that the envelope does not tell are left out (not guessed).
+    levelled = [p for p in partials if has_level(p)]
     if len(levelled) >= 6:
         strike_fit = fit_strike_ratio([p.n for p in levelled], [p.level_db for p in levelled])
     else:
