@@ -16,6 +16,9 @@ include that, and are small only where the data decide (a known gain, or several
 of one key, which also fix p from how the spectrum changes with level). Since the tone is
 set by the combination, the fitted preset plays like the recording at the assumed speed.
 
+The levels are weighted by their scatter about the model as the fit shows it (never
+below LEVEL_SCATTER_DB), so that detail no felt explains does not outweigh the priors.
+
 For speed, the simulation is run once on a grid (felt x speed, all speeds of a felt in one
 batch) and the fit moves on smooth splines of the grid's levels.
 """
@@ -117,7 +120,7 @@ def _grid(preset: Preset, key: int, force: NDArray[np.float64], speeds: NDArray[
 
 def _start(rows: list[tuple[NDArray[np.int64], NDArray[np.float64]]], levels: NDArray[np.float64],
            logf: NDArray[np.float64], logv: NDArray[np.float64], logf0: float, priors: list[tuple[float, float]],
-           calibration_db: float | None) -> NDArray[np.float64]:
+           calibration_db: float | None, scatter_db: float) -> NDArray[np.float64]:
     """The best grid node (felt, and a speed per strike) as the starting point: the misfit
     has several minima along the felt-speed trade-off, and a start from the prior alone
     can end in the wrong one."""
@@ -127,7 +130,7 @@ def _start(rows: list[tuple[NDArray[np.int64], NDArray[np.float64]]], levels: ND
         diff = meas[None, None, :] - levels[:, :, sel]  # (felt, speed, partials)
         # Each strike with its own gain here (exact when uncalibrated with one strike a take).
         gain = calibration_db if calibration_db is not None else diff.mean(axis=2, keepdims=True)
-        cost = np.sum((diff - gain) ** 2, axis=2) / LEVEL_SCATTER_DB**2 + ((logv[None, :] - mu) / sd) ** 2
+        cost = np.sum((diff - gain) ** 2, axis=2) / scatter_db**2 + ((logv[None, :] - mu) / sd) ** 2
         j = np.argmin(cost, axis=1)
         best_v.append(j)
         total = total + cost[np.arange(len(logf)), j]
@@ -137,7 +140,7 @@ def _start(rows: list[tuple[NDArray[np.int64], NDArray[np.float64]]], levels: ND
 
 def _solve(strikes: Sequence[StrikeLevels], takes: list[str], logf: NDArray[np.float64], logv: NDArray[np.float64],
            levels: NDArray[np.float64], n_used: NDArray[np.int64], logf0: float, calibration_db: float | None,
-           default_speed: float):
+           default_speed: float, scatter_db: float):
     splines = [RectBivariateSpline(logf, logv, levels[:, :, j], kx=3, ky=3) for j in range(len(n_used))]
     index = {int(k): j for j, k in enumerate(n_used)}
     rows = []
@@ -163,12 +166,12 @@ def _solve(strikes: Sequence[StrikeLevels], takes: list[str], logf: NDArray[np.f
         return out
 
     def residuals(x: NDArray[np.float64]) -> NDArray[np.float64]:
-        data = np.concatenate([(meas - pred) / LEVEL_SCATTER_DB for (_, meas), pred in zip(rows, model(x))])
+        data = np.concatenate([(meas - pred) / scatter_db for (_, meas), pred in zip(rows, model(x))])
         prior = [(x[0] - logf0) / np.log(FELT_PRIOR_FACTOR)]
         prior += [(x[1 + i] - mu) / sd for i, (mu, sd) in enumerate(priors)]
         return np.concatenate([data, prior])
 
-    x0 = np.concatenate([_start(rows, levels, logf, logv, logf0, priors, calibration_db), np.zeros(n_t)])
+    x0 = np.concatenate([_start(rows, levels, logf, logv, logf0, priors, calibration_db, scatter_db), np.zeros(n_t)])
     if n_t:  # start each take's gain at its mean misfit
         pred = model(x0)
         for t in range(n_t):
@@ -179,7 +182,7 @@ def _solve(strikes: Sequence[StrikeLevels], takes: list[str], logf: NDArray[np.f
     x0 = np.clip(x0, lo + 1e-9, hi - 1e-9)
     sol = least_squares(residuals, x0, bounds=(lo, hi), x_scale="jac")
     n_data = sum(len(m) for _, m in rows)
-    data_res = sol.fun[:n_data] * LEVEL_SCATTER_DB
+    data_res = sol.fun[:n_data] * scatter_db
     return sol, n_data, data_res, lo, hi
 
 
@@ -234,26 +237,37 @@ def fit_felt(preset: Preset, key: int, strikes: Sequence[StrikeLevels], *, calib
     default_speed = float(np.sqrt(vel["speed_at_velocity_1_m_s"] * vel["speed_at_velocity_127_m_s"]))
     exponents = [p0 + d for d in EXPONENT_STEPS if 1.0 <= p0 + d <= 6.0] if fit_exponent else [p0]
 
-    def solve_on(p: float, force: NDArray[np.float64], speeds: NDArray[np.float64]) -> tuple:
-        levels = _grid(preset, key, force, speeds, p, n_all, settings)
+    grids: dict[tuple, NDArray[np.float64]] = {}
+
+    def solve_on(p: float, force: NDArray[np.float64], speeds: NDArray[np.float64], scatter_db: float) -> tuple:
+        at = (p, tuple(force), tuple(speeds))
+        if at not in grids:
+            grids[at] = _grid(preset, key, force, speeds, p, n_all, settings)
+        levels = grids[at]
         usable = ~np.isnan(levels).any(axis=(0, 1))
         n_used = n_all[usable]
         return (p, n_used, *_solve(strikes, takes, np.log(force), np.log(speeds), levels[:, :, usable], n_used,
-                                   np.log(f0), calibration_db, default_speed))
+                                   np.log(f0), calibration_db, default_speed, scatter_db))
 
-    def fit_at(p: float) -> tuple:
+    def fit_at(p: float, scatter_db: float) -> tuple:
         coarse = solve_on(p, f0 * np.geomspace(1 / FELT_SPAN, FELT_SPAN, FELT_POINTS),
-                          np.geomspace(*SPEED_RANGE_M_S, SPEED_POINTS))
+                          np.geomspace(*SPEED_RANGE_M_S, SPEED_POINTS), scatter_db)
         # Then a fine grid around the result: the splines of the coarse grid are off by a
         # few per cent in the felt (measured on exact levels of the model itself).
         x = coarse[2].x
         step = np.geomspace(1 / ZOOM, ZOOM, ZOOM_POINTS)
         speeds = np.unique(np.round(np.log(np.exp(x[1:1 + len(strikes)])[:, None] * step), 3))
-        fine = solve_on(p, np.exp(x[0]) * step, np.exp(speeds))
+        fine = solve_on(p, np.exp(x[0]) * step, np.exp(speeds), scatter_db)
         fx, (flo, fhi) = fine[2].x[:1 + len(strikes)], (fine[5][:1 + len(strikes)], fine[6][:1 + len(strikes)])
         return coarse if np.any(np.isclose(fx, flo, atol=1e-6) | np.isclose(fx, fhi, atol=1e-6)) else fine
 
-    fits = [fit_at(p) for p in exponents]
+    # The levels scatter about the model by what the fit shows, never less than
+    # LEVEL_SCATTER_DB: a real recording's soundboard, room and microphone leave several dB
+    # that no felt explains, and weighting the data as if they did would let that detail,
+    # not the priors, settle the felt-speed trade-off (speeds driven to the grid's ends).
+    first_res = fit_at(p0, LEVEL_SCATTER_DB)[4]
+    scatter = max(LEVEL_SCATTER_DB, float(np.sqrt(np.mean(first_res**2))))
+    fits = [fit_at(p, scatter) for p in exponents]
     costs = np.array([2 * f[2].cost for f in fits])  # chi-square (least_squares' cost is half of it)
     best = int(np.argmin(costs))
     notes: list[str] = []
@@ -265,7 +279,7 @@ def fit_felt(preset: Preset, key: int, strikes: Sequence[StrikeLevels], *, calib
         a, b, _ = np.polyfit(np.array(exponents[j - 1:j + 2]), costs[j - 1:j + 2], 2)
         if a > 0 and best not in (0, len(fits) - 1):
             p_unc = float(np.sqrt(1.0 / a))  # chi-square rises by 1 at one sigma
-            fits[best] = fit_at(float(-b / (2 * a)))
+            fits[best] = fit_at(float(-b / (2 * a)), scatter)
         else:
             notes.append("felt exponent at the edge of its search range")
             p_unc = float(abs(exponents[1] - exponents[0]))
