@@ -53,7 +53,7 @@ def _note_json(note: NoteAnalysis, fit: KeyFit | None) -> dict[str, Any]:
         "strike_ratio": None if note.strike is None else round(note.strike.ratio, 4),
         "strike_ratio_uncertainty": None if note.strike is None else round(note.strike.uncertainty, 4),
         "strike_quality": None if note.strike is None else note.strike.quality,
-        "partials": [{"n": p.n, "freq_hz": round(p.freq_hz, 4), "level_db": round(p.level_db, 2),
+        "partials": [{"n": p.n, "freq_hz": round(p.freq_hz, 4), "level_db": _finite(p.level_db, 2),
                       "t60_s": _finite(p.t60_s, 3), "knee_s": _finite(p.knee_s, 3),
                       "after_t60_s": _finite(p.after_t60_s, 3), "beat_hz": _finite(p.beat_hz, 3),
                       "decay_quality": p.decay_quality} for p in note.partials],
