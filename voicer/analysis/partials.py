@@ -370,7 +370,7 @@ def _robust_fit(
     from ``f_n = n f0 sqrt(1 + B n^2)`` by a cent or two (coupling to the bridge, unisons),
     far more than its strong partials' measurement uncertainty, and without this term the
     strongest partials would be the ones rejected. The scatter is estimated from the inliers'
-    residuals (1.4826 MAD in cents, less what the measurements explain), so an exact series
+    residuals of all peaks (1.4826 MAD in cents, less what the measurements explain), so an exact series
     keeps its full weighting. Peaks whose residual exceeds ``_REJECT_SIGMAS`` robust
     standard deviations of the normalised residuals (1.4826 MAD, never below 1) are rejected
     and the rest refitted until the set and the scatter are stable; ``start`` is the first
@@ -397,8 +397,10 @@ def _robust_fit(
         z = resid / sigma
         if not rejecting:
             break
-        spread = 1.4826 * float(np.median(np.abs(resid[inl] / (f[inl] * per_cent))))
-        new_scatter = math.sqrt(max(spread**2 - float(np.median(meas_cents[inl] ** 2)), 0.0))
+        # Over all peaks, not only the inliers: the MAD shrugs off outliers by itself, while
+        # one taken after rejection is cut short and talks the scatter down.
+        spread = 1.4826 * float(np.median(np.abs(resid / (f * per_cent))))
+        new_scatter = math.sqrt(max(spread**2 - float(np.median(meas_cents**2)), 0.0))
         new_sigma = np.hypot(sigma_hz, f * new_scatter * per_cent)
         z_new = resid / new_sigma
         scale = max(1.0, 1.4826 * float(np.median(np.abs(z_new[inl]))))
