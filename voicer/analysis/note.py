@@ -22,12 +22,15 @@ from .audio import Recording, load_recording
 from .decay import DecayFit, fit_decay, partial_envelopes
 from .onsets import Strike, Take, segment
 from .partials import SeriesFit, find_series
-from .steady import SteadyTone, find_steady_tones
+from .steady import MIN_WINDOW_S, SteadyTone, find_steady_tones
 from .strike import StrikeFit, fit_strike_ratio
 
 #: Partials analysed per note at most (beyond ~40 a recording's partials are mostly room
 #: and noise, and the hammer's spectrum is far down).
 MAX_PARTIALS = 40
+#: A steady tone this close to a lone note's pitch (relative; ~17 cents, well beyond the
+#: pitch estimate's error) is taken for the note's first partial.
+OWN_PITCH_TOLERANCE = 0.01
 #: A partial's onset level is used (strike ratio, felt) when known to within this, dB: a
 #: real note's beating or bending envelope leaves its T60 uncertain long before its level.
 MAX_LEVEL_UNCERTAINTY_DB = 6.0
@@ -160,6 +163,12 @@ def analyze_recording(path: str | Path, *, key: int | None = None, a4_hz: float 
     recording = load_recording(path)
     take = segment(recording, a4_hz=a4_hz, key=key)
     steady = find_steady_tones(recording.samples, recording.sample_rate, [s.onset_s for s in take.strikes])
+    if len(take.strikes) == 1 and take.strikes[0].onset_s < MIN_WINDOW_S:
+        # One note and no lead-in: only the fall of its level tells a steady tone, and the
+        # note's own first partial can hold its level for a short file (beating unisons;
+        # measured on the fluid-soundfont-gm C6, 1.5 s long). The file is of the note.
+        own = take.strikes[0].pitch_hz
+        steady = tuple(t for t in steady if abs(t.freq_hz / own - 1.0) > OWN_PITCH_TOLERANCE)
     exclude = tuple(t.freq_hz for t in steady)
     notes, skipped = [], list(take.skipped)
     for i, strike in enumerate(take.strikes):
