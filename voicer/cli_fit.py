@@ -41,17 +41,23 @@ def _analyze_all(paths: Sequence[str], *, a4_hz: float) -> list[RecordingAnalysi
     return out
 
 
-def _finite(x: float | None, digits: int) -> float | None:
-    return None if x is None or not math.isfinite(x) else round(float(x), digits)
+def _finite(x: float | None, digits: int | None = None) -> float | None:
+    """A number for JSON (rounded to ``digits`` if given), or None where it is not finite:
+    JSON has no NaN or Infinity (RFC 8259), and the writer refuses them."""
+    if x is None or not math.isfinite(x):
+        return None
+    return float(x) if digits is None else round(float(x), digits)
 
 
 def _note_json(note: NoteAnalysis, fit: KeyFit | None) -> dict[str, Any]:
     out: dict[str, Any] = {
         "file": note.path, "key": note.key, "name": key_name(note.key), "onset_s": round(note.onset_s, 4),
         "level_dbfs": round(note.level_db, 2), "f0_hz": round(note.first_partial_hz, 4),
-        "cents_from_et": round(note.cents_from_et, 2), "b": note.b, "b_uncertainty": note.b_uncertainty,
+        "cents_from_et": round(note.cents_from_et, 2),
+        "b": _finite(note.b), "b_uncertainty": _finite(note.b_uncertainty),
         "strike_ratio": None if note.strike is None else round(note.strike.ratio, 4),
-        "strike_ratio_uncertainty": None if note.strike is None else round(note.strike.uncertainty, 4),
+        # an uncertainty the fit could not bound (degenerate covariance) is infinite: null
+        "strike_ratio_uncertainty": None if note.strike is None else _finite(note.strike.uncertainty, 4),
         "strike_quality": None if note.strike is None else note.strike.quality,
         "partials": [{"n": p.n, "freq_hz": round(p.freq_hz, 4), "level_db": _finite(p.level_db, 2),
                       "t60_s": _finite(p.t60_s, 3), "knee_s": _finite(p.knee_s, 3),
