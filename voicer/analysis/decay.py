@@ -846,7 +846,9 @@ def _order_stages(model: _Model) -> tuple[NDArray[np.float64], NDArray[np.float6
 
 def _two_stages_valid(model: _Model, data: _Data) -> bool:
     (g1, s1), (g2, s2) = _order_stages(model)
-    if not (s1 > 0 and s1 > STAGE_RATE_RATIO * s2):
+    # A growing "aftersound" is no stage of a struck string: it is an envelope cut short
+    # (a partial dropped by a renderer or gated by a phone, the fit's edge) or noise.
+    if not (s1 > 0 and s2 >= 0 and s1 > STAGE_RATE_RATIO * s2):
         return False
     knee = (g1 - g2) / (s1 - s2)
     t = data.t
