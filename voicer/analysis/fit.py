@@ -21,6 +21,8 @@ from typing import Any, Callable, Sequence
 import numpy as np
 
 from .. import __version__
+from ..errors import PresetError
+from ..tone.measured import parse_measured_key
 from ..tone.preset import Preset
 from ..tone.tables import TableSettings
 from ..tone.velocity import hammer_speed
@@ -62,6 +64,22 @@ def _weighted(values: Sequence[float], sigmas: Sequence[float]) -> tuple[float, 
 
 def _nan(x: float | None) -> float:
     return float("nan") if x is None else float(x)
+
+
+def _valid_partials(key: int, measured: dict[str, Any], remarks: list[str]) -> dict[str, Any]:
+    """``measured`` without the partials a preset would refuse (a value outside its
+    range: one odd partial must not fail the whole fit), each named in ``remarks``."""
+    arrays = [name for name, v in measured.items() if isinstance(v, list)]
+    keep = []
+    for j, n in enumerate(measured["n"]):
+        one = {**{k: v for k, v in measured.items() if k not in arrays}, **{k: [measured[k][j]] for k in arrays}}
+        try:
+            parse_measured_key(key, one, {})
+        except PresetError as exc:
+            remarks.append(f"partial {n} left out of the replay: {exc.field}: {exc.reason}")
+            continue
+        keep.append(j)
+    return {k: ([v[j] for j in keep] if k in arrays else v) for k, v in measured.items()}
 
 
 def fit_key(base: Preset, key: int, notes: Sequence[NoteAnalysis], *, calibration_db: float | None = None,
@@ -122,7 +140,8 @@ def fit_key(base: Preset, key: int, notes: Sequence[NoteAnalysis], *, calibratio
             "after_t60_s": [_nan(None if p.after_t60_s is None else round(min(p.after_t60_s, UNDECAYED_T60_S), 4))
                             for p in replay],
         }
-        flat = [p.n for p in replay if (p.after_t60_s or 0.0) > UNDECAYED_T60_S]
+        measured = _valid_partials(key, measured, remarks)
+        flat = [n for n, t in zip(measured["n"], measured["after_t60_s"]) if t == UNDECAYED_T60_S]
         if flat:
             remarks.append(f"aftersound of partial(s) {', '.join(map(str, flat))} did not decay measurably "
                            f"within the note: stored with T60 {UNDECAYED_T60_S:g} s")

@@ -124,7 +124,10 @@ def fitted_preset(base: Preset, fits: Sequence[KeyFit], *, provenance: Mapping[s
         raise ValueError(f"one fit per key expected, got keys {sorted(keys)}")
     usable = [f for f in fits if f.quality != "poor"]
     # The instrument's pitch as a whole goes to A4; the keys keep their stretch around it.
-    offset = float(np.median([f.cents_from_et for f in usable])) if usable else 0.0
+    # The whole is measured against the base's own stretch: a few bass notes of a piano
+    # stretched like the base are not a flat piano (nor a few treble notes a sharp one).
+    stretch = base.resolved["stretch_cents"]
+    offset = float(np.median([f.cents_from_et - stretch[f.key - LOWEST_KEY] for f in usable])) if usable else 0.0
     data = base.to_dict()
     a4 = base.instrument["a4_hz"] * 2.0 ** (offset / 1200.0)
     data["instrument"]["a4_hz"] = round(a4, 2)
