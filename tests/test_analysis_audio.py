@@ -45,7 +45,7 @@ def test_missing_empty_and_text_files(tmp_path) -> None:
     rejected(tmp_path / "nowhere.wav", "no such file")
     empty = tmp_path / "empty.wav"
     empty.write_bytes(b"")
-    rejected(empty, r"cannot be read as audio \(Format not recognised\); formats read: .*FLAC.*WAV")
+    rejected(empty, r"is empty \(0 bytes\): the recording was not saved, or not completely")
     text = tmp_path / "notes.wav"
     text.write_text("C4 mf, C4 ff, D4 mf\n")
     rejected(text, r"cannot be read as audio.*formats read: .*MP3.*OGG.*WAV.*\(libsndfile ")

@@ -129,7 +129,7 @@ def _bad_files(folder: Path) -> dict[str, tuple[Path, list[str]]]:
         files[path.stem] = (path, words)
         return path
 
-    add("empty.wav", ["cannot be read as audio"]).write_bytes(b"")
+    add("empty.wav", ["is empty (0 bytes)"]).write_bytes(b"")
     sf.write(add("no-frames.wav", ["no samples"]), np.zeros((0, 1)), RATE)
     add("notes.wav", ["cannot be read as audio"]).write_text("C4 mf, then E4 ff\n")
     sf.write(add("silence.wav", ["silent", "every sample is zero"]), np.zeros(RATE), RATE)

@@ -199,6 +199,8 @@ def load_recording(path: str | Path, *, sample_rate: int | None = None) -> Recor
     name = str(path)
     if not Path(path).is_file():
         raise RecordingError("no such file", file=name)
+    if Path(path).stat().st_size == 0:
+        raise RecordingError("is empty (0 bytes): the recording was not saved, or not completely", file=name)
     try:
         info = sf.info(name)
     except sf.LibsndfileError as err:
