@@ -36,3 +36,19 @@ def demo(demo_path) -> Preset:
 def private_cache(tmp_path, monkeypatch):
     """Every test gets its own table cache; nothing is written to the user's."""
     monkeypatch.setenv("VOICER_CACHE_DIR", str(tmp_path / "cache"))
+
+
+@pytest.fixture(scope="module")
+def module_cache(tmp_path_factory):
+    """One table cache for a module whose module fixtures build tables (they run before the
+    per-test cache is set), never the user's; shared by its tests so that each builds only
+    the keys it changes. Use with ``pytestmark = pytest.mark.usefixtures("shared_cache")``."""
+    folder = str(tmp_path_factory.mktemp("cache"))
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setenv("VOICER_CACHE_DIR", folder)
+        yield folder
+
+
+@pytest.fixture
+def shared_cache(private_cache, module_cache, monkeypatch):
+    monkeypatch.setenv("VOICER_CACHE_DIR", module_cache)

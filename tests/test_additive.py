@@ -32,20 +32,8 @@ SETTINGS = TableSettings(layers=6, max_partials=48)  # few layers and partials: 
 FITTED = ("felt_force_1mm_n", "felt_exponent", "strike_ratio", "hammer_mass_g", "hammer_width_mm")
 
 
-@pytest.fixture(scope="module", autouse=True)
-def module_cache(tmp_path_factory):
-    """Module fixtures build tables before the per-test cache is set: give the module one
-    cache of its own (never the user's), shared by its tests so that each builds only the
-    keys it changes."""
-    folder = str(tmp_path_factory.mktemp("cache"))
-    with pytest.MonkeyPatch.context() as mp:
-        mp.setenv("VOICER_CACHE_DIR", folder)
-        yield folder
-
-
-@pytest.fixture(autouse=True)
-def shared_cache(private_cache, module_cache, monkeypatch):
-    monkeypatch.setenv("VOICER_CACHE_DIR", module_cache)
+# Module fixtures build tables before the per-test cache is set (conftest.module_cache).
+pytestmark = pytest.mark.usefixtures("module_cache", "shared_cache")
 
 
 def measured_strike(preset) -> dict:

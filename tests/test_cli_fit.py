@@ -59,19 +59,8 @@ def write_midi(path: Path, notes: list[tuple[int, float, float]]) -> Path:
     return path
 
 
-@pytest.fixture(scope="module", autouse=True)
-def module_cache(tmp_path_factory):
-    """Module fixtures render before the per-test cache is set: one table cache for the
-    module (never the user's), shared by its tests."""
-    folder = str(tmp_path_factory.mktemp("cache"))
-    with pytest.MonkeyPatch.context() as mp:
-        mp.setenv("VOICER_CACHE_DIR", folder)
-        yield folder
-
-
-@pytest.fixture(autouse=True)
-def shared_cache(private_cache, module_cache, monkeypatch):
-    monkeypatch.setenv("VOICER_CACHE_DIR", module_cache)
+# Module fixtures build tables before the per-test cache is set (conftest.module_cache).
+pytestmark = pytest.mark.usefixtures("module_cache", "shared_cache")
 
 
 @pytest.fixture(scope="module")

@@ -26,6 +26,9 @@ from voicer.resources import find_preset
 from voicer.tone.preset import load_preset, save_preset
 from voicer.tone.velocity import hammer_speed
 
+# The module fixture fits and renders before the per-test cache is set (conftest.module_cache).
+pytestmark = pytest.mark.usefixtures("module_cache", "shared_cache")
+
 #: The issue's "samples whose recording resolves at least 8 partials".
 MIN_PARTIALS = 8
 #: Published/remembered B per register, (first key, last key, low, high). Typical values
