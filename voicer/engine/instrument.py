@@ -24,7 +24,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from ..physics.constants import T60_LN
-from ..tone.tables import ModalTables
+from ..tone.tables import KeyTable, ModalTables
 from ..tone.velocity import hammer_speed
 from .bank import PartialTables, partial_tables
 
@@ -76,27 +76,40 @@ class Instrument:
         self.sample_rate = float(sample_rate)
         self.last_damped_key = int(inst["last_damped_key"])
         self.half_pedal = (int(inst["half_pedal_low_cc"]), int(inst["half_pedal_high_cc"]))
-        speeds = hammer_speed(np.arange(1, 128), inst)
-        scale = preset.scale
-        self.keys: dict[int, KeyData] = {}
-        for key, table in tables.keys.items():
-            i = scale.index(key)
-            damper = float(scale.values["damper_rate_per_s"][i])
-            levels = []
+        self._speeds = hammer_speed(np.arange(1, 128), inst)
+        self.keys: dict[int, KeyData] = {key: self.key_data(table) for key, table in tables.keys.items()}
+        self.max_partials = max(len(k.freq_hz) for k in self.keys.values())
+
+    def key_data(self, table: KeyTable, *, like: KeyData | None = None) -> KeyData:
+        """One key's data from its table (allocates: off the audio thread).
+
+        With ``like``, a key of this state whose partials have the same frequencies and
+        decay rates (a change of the hammer only: felt, mass, strike point), its damper
+        and fade tables are shared instead of recomputed; a voice already sounding on
+        ``like`` then keeps exactly its partials when a damper falls on it.
+        """
+        key = table.key
+        inst = self.preset.instrument
+        free = (-table.sigma_per_s + 2j * np.pi * table.freq_hz) / self.sample_rate
+        if like is not None and np.array_equal(like.levels[0].lam, free):
+            levels = like.levels
+        else:
+            damper = float(self.preset.scale.value("damper_rate_per_s", key))
+            built = []
             for level in range(DAMPER_LEVELS + 1):
                 sigma = table.sigma_per_s + damper * level / DAMPER_LEVELS
-                levels.append(partial_tables((-sigma + 2j * np.pi * table.freq_hz) / sample_rate,
-                                             split=split, max_block=max_block))
+                built.append(partial_tables((-sigma + 2j * np.pi * table.freq_hz) / self.sample_rate,
+                                            split=self.split, max_block=self.max_block))
             fade_sigma = table.sigma_per_s + T60_LN / FADE_S
-            levels.append(partial_tables((-fade_sigma + 2j * np.pi * table.freq_hz) / sample_rate,
-                                         split=split, max_block=max_block))
-            amp = np.zeros((128, len(table.freq_hz)), dtype=np.complex128)
-            amp[1:] = table.at_speeds(speeds)
-            octaves = np.log2(table.freq_hz / table.freq_hz[0])
-            una = 10.0 ** ((inst["una_corda_level_db"] + inst["una_corda_tilt_db_per_octave"] * octaves) / 20.0)
-            self.keys[key] = KeyData(key=key, freq_hz=table.freq_hz, damped=key <= self.last_damped_key,
-                                     levels=tuple(levels), amplitude=amp, una_corda_gain=una)
-        self.max_partials = max(len(k.freq_hz) for k in self.keys.values())
+            built.append(partial_tables((-fade_sigma + 2j * np.pi * table.freq_hz) / self.sample_rate,
+                                        split=self.split, max_block=self.max_block))
+            levels = tuple(built)
+        amp = np.zeros((128, len(table.freq_hz)), dtype=np.complex128)
+        amp[1:] = table.at_speeds(self._speeds)
+        octaves = np.log2(table.freq_hz / table.freq_hz[0])
+        una = 10.0 ** ((inst["una_corda_level_db"] + inst["una_corda_tilt_db_per_octave"] * octaves) / 20.0)
+        return KeyData(key=key, freq_hz=table.freq_hz, damped=key <= self.last_damped_key, levels=levels,
+                       amplitude=amp, una_corda_gain=una)
 
     def damper_level(self, sustain_cc: int) -> int:
         """Damper engagement level of a released key at a sustain-pedal value (0..127)."""

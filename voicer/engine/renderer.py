@@ -14,12 +14,21 @@ chord voiced both ways.
 Output is the summed bridge force times the master gain, through the effect plugins and
 the :class:`~voicer.engine.safety.SafetyStage`. A voice whose state turns non-finite is
 removed and the fault counted. After construction nothing allocates arrays.
+
+A key's data can be replaced while playing (the live knobs, :mod:`voicer.engine.rebuild`):
+another thread appends ``(state index, KeyData)`` to :attr:`Renderer.swaps`, and
+:meth:`process` swaps it in at the start of its next block, with no lock. The strikes
+made from then on use the new data; voices already sounding keep their partials (a
+hammer change acts on the next blow, not on a vibrating string), so nothing is cut. The
+replaced data goes to :attr:`Renderer.retired` for the other thread to drop, so that its
+arrays are not freed in the callback.
 """
 
 from __future__ import annotations
 
 __all__ = ["Renderer", "RenderStats", "PeakMeter", "HOUSEKEEPING_FRAMES", "DEFAULT_GAIN_DB", "DEFAULT_MAX_VOICES"]
 
+from collections import deque
 from dataclasses import dataclass
 from typing import Iterable, Iterator, Sequence
 
@@ -31,7 +40,7 @@ from ..errors import ParameterError
 from .bank import OscillatorBank
 from .defaults import DEFAULT_CULL_DBFS, DEFAULT_GAIN_DB, DEFAULT_MAX_VOICES
 from .host import Effect
-from .instrument import Instrument
+from .instrument import Instrument, KeyData
 from .safety import DEFAULT_CEILING_DBFS, SafetyStage
 from .voices import Voices
 
@@ -54,6 +63,7 @@ class RenderStats:
     peak_abs: float = 0.0
     nonfinite: int = 0
     flips: int = 0
+    swaps: int = 0  # keys' data swapped in (live knobs)
 
     @property
     def mean_partials(self) -> float:
@@ -160,6 +170,10 @@ class Renderer:
         self._mix = np.zeros(block)
         self._ramp = np.zeros(block)
         self._fx = np.zeros((1, block), dtype=np.float32)
+        #: Key data to swap in at the next block, appended by another thread.
+        self.swaps: deque[tuple[int, KeyData]] = deque()
+        #: Key data swapped out, for that thread to drop (never freed in the callback).
+        self.retired: deque[KeyData] = deque()
 
     # --- control -----------------------------------------------------------------
 
@@ -230,6 +244,8 @@ class Renderer:
     def process(self, out: NDArray[np.float32], events: Iterable[tuple[int, mido.Message | str]] = ()) -> None:
         """Fill ``out`` (channels, frames) with the next frames; apply each event at its
         sample offset (0 <= offset < frames, in time order; later offsets are clamped)."""
+        while self.swaps:
+            self._swap(*self.swaps.popleft())
         frames = out.shape[1]
         pending = iter(events)
         event = next(pending, None)
@@ -248,6 +264,14 @@ class Renderer:
         while event is not None:  # events given past the end of the block: apply now
             self.apply(event[1])
             event = next(pending, None)
+
+    def _swap(self, state: int, data: KeyData) -> None:
+        keys = self.states[state].keys
+        old = keys.get(data.key)
+        keys[data.key] = data
+        if old is not None:
+            self.retired.append(old)
+        self.stats.swaps += 1
 
     def _block(self, n: int, pending: Iterator[tuple[int, mido.Message | str]],
                event: tuple[int, mido.Message | str] | None, frames: int,

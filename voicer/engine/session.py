@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-__all__ = ["prepare_states"]
+__all__ = ["prepare_states", "table_settings"]
 
 from pathlib import Path
 
@@ -14,6 +14,11 @@ from .host import load_plugin
 from .instrument import Instrument
 
 
+def table_settings(sample_rate: int) -> TableSettings:
+    """The settings of the tables a command plays at ``sample_rate``."""
+    return TableSettings(sample_rate_hz=float(sample_rate))
+
+
 def prepare_states(preset: Preset, voicing: str | Path | None, *, sample_rate: int, block: int,
                    model: str = "physical", both: bool = True, progress: bool = False) -> list[Instrument]:
     """State A (the preset) and, with a voicing plan, state B (the plan applied).
@@ -21,7 +26,7 @@ def prepare_states(preset: Preset, voicing: str | Path | None, *, sample_rate: i
     With ``both=False`` and a plan, only the voiced state is returned (renders).
     """
     builder = load_plugin("models", model)()
-    settings = TableSettings(sample_rate_hz=float(sample_rate))
+    settings = table_settings(sample_rate)
     presets: list[tuple[str, Preset]] = [("A", preset)]
     if voicing is not None:
         voiced = apply_voicing(preset, load_voicing(voicing))
