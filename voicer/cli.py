@@ -240,6 +240,14 @@ def build_parser() -> argparse.ArgumentParser:
     play.add_argument("--ab-cc", type=_ranged_int(0, 127, "controller"), metavar="N",
                       help="MIDI controller whose press flips A/B")
     play.add_argument("--seconds", type=_seconds(zero_ok=False), metavar="S", help="stop after S seconds")
+    play.add_argument("--knobs", metavar="FILE.toml",
+                      help="MIDI controllers of the live knobs that voice the last state: felt, strike point, hammer "
+                           "mass of the keys last played, a save button (default: the bundled presets/knobs.toml)")
+    play.add_argument("--no-knobs", action="store_true", help="play without live knobs")
+    play.add_argument("--knob-keys", metavar="KEYS",
+                      help="keys the knobs act on, e.g. 52-67 or 60,64,67 (default: the keys last played)")
+    play.add_argument("--save-plan", metavar="PLAN.toml",
+                      help="where the knobs' amounts are saved (default: voicing-DATE-TIME.toml here)")
     _audio_options(play)
     play.set_defaults(func=_audio("cmd_play"))
 

@@ -16,17 +16,22 @@ from pathlib import Path
 from threadpoolctl import threadpool_limits
 
 from .engine.host import discover, format_plugins
-from .engine.keyboard import HELP, KeyboardPlayer, raw_terminal
+from .engine.keyboard import HELP, KNOB_HELP, KeyboardPlayer, raw_terminal
+from .engine.knob_state import keys_text, parse_key_spec
+from .engine.knobs import KnobMap, load_knobs
 from .engine.live import LiveInput
+from .engine.live_knobs import LiveKnobs
 from .engine.offline import RenderResult, render_events
 from .engine.renderer import Renderer
-from .engine.session import prepare_states
+from .engine.rebuild import LIVE_MODELS
+from .engine.session import prepare_states, table_settings
 from .errors import VoicerError
 from .io.atomic import atomic_write_bytes
 from .io.sinks import FileSink, PortAudioSink, format_devices, list_output_devices
 from .io.sources import MidiFileSource, MidiPortSource, format_ports
 from .resources import DEMO_PIANO, find_preset, presets_dir
 from .tone.preset import Preset, load_preset
+from .tone.voicing import load_voicing
 
 CHANNELS = 2
 DEMO_MIDI = "demo-passage.mid"
@@ -107,12 +112,35 @@ def cmd_play(args: argparse.Namespace) -> int:
         return _play(args)
 
 
+def _knob_map(args: argparse.Namespace) -> KnobMap | None:
+    """The knobs' mapping, checked against the other options before any table is built."""
+    if args.no_knobs:
+        return None
+    mapping = load_knobs(args.knobs)
+    if args.model not in LIVE_MODELS:
+        raise VoicerError(f"live knobs rebuild tables with the {' or '.join(LIVE_MODELS)} model, not "
+                          f"'{args.model}'; add --no-knobs to play it")
+    used = mapping.controllers()
+    if args.ab_cc is not None and args.ab_cc in used:
+        raise VoicerError(f"--ab-cc {args.ab_cc} is also {used[args.ab_cc]} in {mapping.source}; choose another")
+    if args.save_plan is not None and not Path(args.save_plan).resolve().parent.is_dir():
+        raise VoicerError(f"--save-plan {args.save_plan}: no such folder {Path(args.save_plan).resolve().parent}")
+    return mapping
+
+
 def _play(args: argparse.Namespace) -> int:
     preset = load_preset(find_preset(args.preset))
+    mapping = _knob_map(args)
+    key_range = parse_key_spec(args.knob_keys) if mapping is not None and args.knob_keys else None
     states = prepare_states(preset, args.voicing, sample_rate=args.sample_rate, block=args.block, model=args.model,
                             progress=_tty())
     renderer = Renderer(states, gain_db=args.gain_db, ab_cc=args.ab_cc)
-    live = LiveInput(args.sample_rate)
+    knobs: LiveKnobs | None = None
+    if mapping is not None:
+        knobs = LiveKnobs(mapping, renderer, root=preset, base_plan=load_voicing(args.voicing) if args.voicing else None,
+                          key_range=key_range, model=args.model, settings=table_settings(args.sample_rate),
+                          save_path=args.save_plan)
+    live = LiveInput(args.sample_rate, tap=knobs.tap if knobs is not None else None)
     stop = threading.Event()
     source: MidiPortSource | None = None
     keyboard: KeyboardPlayer | None = None
@@ -127,18 +155,24 @@ def _play(args: argparse.Namespace) -> int:
               callback=lambda out: renderer.process(out, live.drain(out.shape[1])))
     started = False
     try:
+        if knobs is not None:
+            knobs.start()
         if source is not None:
             source.open(live.push)
             print(f"MIDI input: {source.port_name}", file=sys.stderr)
         elif feeder is not None:
             feeder.start()
         else:
-            keyboard = KeyboardPlayer(live.push)
+            keyboard = KeyboardPlayer(live.push, knobs=mapping)
             print(HELP, file=sys.stderr)
+            if mapping is not None:
+                print(KNOB_HELP, file=sys.stderr)
         ab = " / ".join(s.name for s in states)
         print(f"playing {preset.instrument['name'] or args.preset}, states {ab}; Ctrl-C to stop", file=sys.stderr)
+        if knobs is not None:
+            print(_knobs_line(mapping, knobs), file=sys.stderr)
         started = True
-        _run_live(renderer, sink, live, keyboard, stop, seconds=args.seconds)
+        _run_live(renderer, sink, live, keyboard, stop, seconds=args.seconds, knobs=knobs)
     except KeyboardInterrupt:
         pass
     finally:
@@ -154,7 +188,20 @@ def _play(args: argparse.Namespace) -> int:
                                               (renderer.stats.nonfinite, "non-finite samples")) if n]
     print(f"stopped: {renderer.stats.frames / args.sample_rate:.1f} s played"
           + (f"; {', '.join(problems)}" if problems else ""), file=sys.stderr)
+    if knobs is not None:
+        for line in knobs.close():
+            print(line, file=sys.stderr)
     return 0
+
+
+def _knobs_line(mapping: KnobMap, knobs: LiveKnobs) -> str:
+    """Which controller does what, once at the start."""
+    parts = [f"{k.name} CC {k.cc}" for k in mapping.knobs]
+    parts += [f"{what} CC {cc}" for what, cc in (("save", mapping.save_cc), ("target", mapping.target_cc))
+              if cc is not None]
+    state = knobs.knobs
+    target = f"keys {keys_text(state.key_range)}" if state.on_range else "the keys last played"
+    return f"knobs on state {knobs.state_name}, {target}: {', '.join(parts) or 'none mapped'}"
 
 
 def _status(renderer: Renderer, sink: PortAudioSink) -> str:
@@ -164,8 +211,9 @@ def _status(renderer: Renderer, sink: PortAudioSink) -> str:
 
 
 def _run_live(renderer: Renderer, sink: PortAudioSink, live: LiveInput, keyboard: KeyboardPlayer | None,
-              stop: threading.Event, *, seconds: float | None) -> None:
+              stop: threading.Event, *, seconds: float | None, knobs: LiveKnobs | None = None) -> None:
     deadline = None if seconds is None else time.perf_counter() + seconds
+    width = 0  # the longest status line so far: a shorter one is padded to overwrite it
     with contextlib.ExitStack() as stack:
         if keyboard is not None:
             read_char = stack.enter_context(raw_terminal())
@@ -175,7 +223,9 @@ def _run_live(renderer: Renderer, sink: PortAudioSink, live: LiveInput, keyboard
                 break
             if deadline is not None and time.perf_counter() >= deadline:
                 break
-            sys.stderr.write(_status(renderer, sink))
+            line = _status(renderer, sink) + (knobs.status() if knobs is not None else "")
+            width = max(width, len(line))
+            sys.stderr.write(line.ljust(width))
             sys.stderr.flush()
             stop.wait(0.25)
 
