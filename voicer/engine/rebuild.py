@@ -10,15 +10,19 @@ the latest amount wins and a key is never rebuilt for a value already passed. A 
 amounts are all neutral again gets its original data back, exactly.
 
 Why a process. The contact simulation is a Python loop over time steps on small arrays,
-so it holds the GIL nearly all the time: run in a thread beside a playing renderer, it
-delayed the callback by up to 35 ms (`scripts/bench_knobs.py` measures it), more than
-six blocks of 256 samples; in a worker process the callback kept its timing within about
-a millisecond. The worker is spawned (not forked: the parent has PortAudio and MIDI
-threads) once, when playing starts, and warmed up with one build.
+so it holds the GIL nearly all the time: run in a thread beside a playing renderer
+(4,000 partials, blocks of 256 samples), it stretched single callbacks to 12-24 ms and
+made them late by 9-30 ms (`scripts/bench_knobs.py`, several runs), more than a 5.3 ms
+block; with the same rebuilds in a worker process no callback was late. The worker is
+spawned (not forked: the parent has PortAudio and MIDI threads) when playing starts and
+warmed up with one build, so the first knob move costs no more than the others.
 
-Live tables are simulated with coarser time steps than the full tables
-(:data:`LIVE_STEP_SCALE`), which brings one key within the 50 ms target on this project's
-machine; the benchmark measures what that costs in accuracy against the full settings.
+Live tables are simulated with time steps 1.5 times those of the full tables
+(:data:`LIVE_STEP_SCALE`): one key then takes 15-45 ms from knob to block on this
+project's shared 2-core machine (the full steps: 20-60 ms), for partial levels within
+0.4 dB of the full tables (rms 0.01 dB; 2.0 times the steps would err by 2 dB in the top
+treble and fewer modes above the band by 5 dB; fewer velocity layers save no time, as the
+layers are simulated side by side).
 """
 
 from __future__ import annotations
@@ -28,16 +32,15 @@ __all__ = ["LIVE_STEP_SCALE", "LIVE_MODELS", "live_settings", "build_key_tables"
 import multiprocessing
 import signal
 import threading
+import time
 from concurrent.futures import Future, ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from dataclasses import replace
 from typing import Any, Callable, Mapping
 
-import numpy as np
 from numpy.typing import NDArray
 
 from ..errors import VoicerError
-from ..physics.strike import StepSettings
 from ..tone.preset import Preset, parse_preset
 from ..tone.tables import KeyTable, TableSettings, build_tables
 from .instrument import Instrument, KeyData
@@ -144,6 +147,7 @@ class KeyRebuilder:
         self.model, self.settings = model, settings
         self.on_change = on_change
         self.builds = 0  # worker jobs done
+        self.last_job_s = 0.0  # wall time of the last job, submit to result
         self.errors: dict[int, str] = {}  # the last failure of each key still failing
         self.failure: str | None = None  # the worker itself stopped
         self._dirty: set[int] = set()
@@ -248,8 +252,10 @@ class KeyRebuilder:
                 self.errors[key] = str(exc)
         if not values:
             return
+        started = time.perf_counter()
         future: Future = self._pool.submit(_build, values)  # type: ignore[union-attr]
         results = future.result()
+        self.last_job_s = time.perf_counter() - started
         self.builds += 1
         for key, result in sorted(results.items()):
             if isinstance(result, str):
