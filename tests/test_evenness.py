@@ -339,3 +339,18 @@ def test_measure_refuses_bad_requests(demo, demo_evenness):
         demo_evenness.rms_deviation("loudness")
     with pytest.raises(ParameterError, match="dynamic 'p' was not measured"):
         demo_evenness.rms_deviation("loudness_db", dynamic="p")
+
+
+def test_outlier_hammers_deviate_at_every_dynamic(demo, demo_evenness) -> None:
+    """The demo's top-octave flags are single dynamics meeting dips of the hammer's force
+    spectrum (see the test above): no outlier hammer (flagged_keys with its default
+    consistency across dynamics), though flags exist at single dynamics. Hammers planted
+    harder (x 1.8 at E4 and F5: brighter, common practice) and softer (x 0.55 at D3, D#3:
+    a dull patch) deviate the same way at pp, mf and ff and are found, and no other key."""
+    assert demo_evenness.flagged_keys() == []
+    assert demo_evenness.flagged_keys(consistent=False)  # the single-dynamic dips
+    felt = demo.resolved["felt_force_1mm_n"]
+    planted = demo
+    for key, factor in ((50, 0.55), (51, 0.55), (64, 1.8), (77, 1.8)):
+        planted = planted.with_key_values(key, {"felt_force_1mm_n": factor * float(felt[key - 21])})
+    assert measure(planted).flagged_keys() == [50, 51, 64, 77]
