@@ -351,6 +351,23 @@ def build_parser() -> argparse.ArgumentParser:
     fit.add_argument("--calibration-db", type=_ranged_float(-200.0, 100.0, "calibration"), metavar="DB",
                      help="known recording gain: dBFS of a 1 N bridge-force partial")
     fit.set_defaults(func=_lazy("cli_fit", "cmd_fit"))
+
+    compare = _command(
+        sub, "compare", help="evenness across the scale, before and after a voicing plan",
+        description="Measure every key at pp, mf and ff (loudness, brightness, partials 5-10, attack,\n"
+                    "sustain), fit a smooth trend across the scale and flag the keys that stand out;\n"
+                    "with a plan, the same for the voiced piano. Predictions: check them by ear.",
+        examples=["voicer compare demo",
+                  "voicer compare demo --voicing presets/voicings/kestrel-190-mellow.toml --html report.html",
+                  "voicer compare client.toml --keys 40-70 --json > evenness.json"])
+    _add_preset(compare)
+    compare.add_argument("--voicing", metavar="PLAN.toml", help="voicing plan to compare against")
+    compare.add_argument("--keys", default="21-108", metavar="RANGE", help="keys measured (default 21-108)")
+    compare.add_argument("--dynamic", choices=("pp", "mf", "ff"), default="mf", help="dynamic of the table (default mf)")
+    compare.add_argument("--plot", metavar="FILE.png", help="evenness curves (and FILE-2.png: flagged keys' spectra)")
+    compare.add_argument("--html", metavar="FILE.html", help="a self-contained report for the client")
+    compare.add_argument("--json", action="store_true", help="print JSON (schema in the README)")
+    compare.set_defaults(func=_lazy("cli_voicing", "cmd_compare"))
     return parser
 
 

@@ -1,0 +1,55 @@
+"""The voicing commands: compare (evenness before/after a plan)."""
+
+from __future__ import annotations
+
+__all__ = ["cmd_compare"]
+
+import argparse
+import json
+import sys
+from pathlib import Path
+
+from .errors import VoicerError
+from .resources import find_preset
+from .tone.preset import load_preset
+from .tone.voicing import apply_voicing, load_voicing, parse_keys
+
+
+def _keys(text: str) -> list[int]:
+    return list(parse_keys(text if "-" in text else int(text), where="--keys"))
+
+
+def cmd_compare(args: argparse.Namespace) -> int:
+    from .report.compare import compare, comparison_json, format_comparison
+
+    preset = load_preset(find_preset(args.preset))
+    voiced = plan_name = None
+    if args.voicing:
+        plan = load_voicing(args.voicing)
+        voiced = apply_voicing(preset, plan)
+        plan_name = plan.name or Path(args.voicing).stem
+    keys = _keys(args.keys)
+    if len(keys) < 8:
+        raise VoicerError(f"--keys {args.keys}: evenness needs a trend over at least 8 keys")
+    result = compare(preset, voiced, keys=keys, plan_name=plan_name)
+    if args.plot:
+        from .report.compare import plot_comparison
+
+        figs = plot_comparison(result)
+        path = Path(args.plot)
+        figs[0].savefig(path, dpi=110)
+        for i, fig in enumerate(figs[1:], start=2):
+            fig.savefig(path.with_name(f"{path.stem}-{i}{path.suffix}"), dpi=110)
+    if args.html:
+        from .report.compare import write_report
+
+        write_report(result, args.html)
+    if args.json:
+        json.dump(comparison_json(result), sys.stdout, indent=1, allow_nan=False)
+        sys.stdout.write("\n")
+    else:
+        print(format_comparison(result, dynamic=args.dynamic))
+        for what, path in (("plot", args.plot), ("report", args.html)):
+            if path:
+                print(f"{what} written to {path}")
+    return 0
