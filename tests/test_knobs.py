@@ -440,6 +440,28 @@ def test_a_swap_allocates_nothing_in_the_callback(demo, module_cache) -> None:
     assert all(inst.keys[d.key] is d for d in ready) and len(renderer.retired) == len(ready)
 
 
+def test_a_measured_key_is_rebuilt_as_the_additive_model_builds_it(demo) -> None:
+    """With ``--model additive`` a knob on a key with measured partials rebuilds the
+    replayed table (the model's change against the fitted reference), the same as the
+    model plugin gives for the whole voiced preset."""
+    from test_additive import KEY, with_strike  # the invented recorded C4 of the additive tests
+
+    from voicer.engine.additive import AdditiveModel
+    from voicer.engine.knob_state import with_values
+    from voicer.tone.tables import TableSettings
+
+    fitted = with_strike(demo.with_key_values(KEY, {"strike_ratio": 0.121}))
+    settings = live_settings(TableSettings(layers=6, max_partials=48, sample_rate_hz=FS))  # quick to build
+    values = {KEY: {"felt_force_1mm_n": 1.4 * fitted.scale.value("felt_force_1mm_n", KEY)}}
+    got = build_key_tables(fitted, values, model="additive", settings=settings)[KEY]
+    want = AdditiveModel().build(with_values(fitted, values), settings=settings)[KEY]
+    unvoiced = AdditiveModel().build(fitted, settings=settings)[KEY]
+    assert len(got.freq_hz) == len(fitted.measured[KEY].entries().n)  # the recording's partials
+    np.testing.assert_allclose(got.amplitude_n, want.amplitude_n, rtol=1e-12, atol=0)
+    np.testing.assert_array_equal(got.freq_hz, want.freq_hz)
+    assert np.abs(got.amplitude_n - unvoiced.amplitude_n).max() > 1e-3 * np.abs(unvoiced.amplitude_n).max()
+
+
 # --- voicer play's options -----------------------------------------------------------------------
 
 @pytest.mark.parametrize("extra, message", [
@@ -448,6 +470,7 @@ def test_a_swap_allocates_nothing_in_the_callback(demo, module_cache) -> None:
     (["--knob-keys", "60-x"], r"--knob-keys '60-x': '60-x' is not a key or a range"),
     (["--model", "additive2"], r"live knobs rebuild tables with the physical or additive model, not 'additive2'"),
     (["--save-plan", "/nonexistent/folder/plan.toml"], r"--save-plan /nonexistent/folder/plan.toml: no such folder"),
+    (["--no-knobs", "--knob-keys", "52-67"], r"--no-knobs turns the knobs off; --knob-keys would do nothing"),
 ])
 def test_play_refuses_bad_knob_options_in_one_line(capsys, extra, message) -> None:
     """Refused before any table is built or device opened: exit 2, one line naming the problem."""

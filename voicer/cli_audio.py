@@ -115,6 +115,10 @@ def cmd_play(args: argparse.Namespace) -> int:
 def _knob_map(args: argparse.Namespace) -> KnobMap | None:
     """The knobs' mapping, checked against the other options before any table is built."""
     if args.no_knobs:
+        given = [name for name, value in (("--knobs", args.knobs), ("--knob-keys", args.knob_keys),
+                                          ("--save-plan", args.save_plan)) if value is not None]
+        if given:
+            raise VoicerError(f"--no-knobs turns the knobs off; {' and '.join(given)} would do nothing")
         return None
     mapping = load_knobs(args.knobs)
     if args.model not in LIVE_MODELS:

@@ -87,10 +87,11 @@ class KnobState:
         """The keys a knob move acts on now (empty before any key was played)."""
         if self.on_range:
             return self.key_range
-        if not self._recent:
+        recent = list(self._recent)  # a copy: the MIDI thread may add to it meanwhile
+        if not recent:
             return ()
-        last = self._recent[-1][0]
-        return tuple(sorted({k for t, k in self._recent if t >= last - CHORD_S}))
+        last = recent[-1][0]
+        return tuple(sorted({k for t, k in recent if t >= last - CHORD_S}))
 
     # --- amounts -------------------------------------------------------------------
 
