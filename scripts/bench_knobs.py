@@ -138,7 +138,12 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--block", type=int, default=256)
     args = parser.parse_args()
-    os.environ["VOICER_CACHE_DIR"] = tempfile.mkdtemp(prefix="voicer-bench-")  # not the user's cache
+    with tempfile.TemporaryDirectory(prefix="voicer-bench-") as scratch:
+        os.environ["VOICER_CACHE_DIR"] = scratch  # not the user's cache
+        run(args.block, scratch)
+
+
+def run(block: int, scratch: str) -> None:
     preset = load_preset(find_preset("demo"))
     settings = table_settings(FS)
     felt = load_knobs().knobs[0]
@@ -155,11 +160,12 @@ def main() -> None:
 
     tables = build_tables(preset, settings=settings)
     # No culling: the texture below keeps the callback's load steady through the whole run.
-    renderer = Renderer([Instrument(tables, sample_rate=FS, max_block=args.block, split=DEFAULT_SPLIT)],
+    renderer = Renderer([Instrument(tables, sample_rate=FS, max_block=block, split=DEFAULT_SPLIT)],
                         cull_dbfs=-300.0)
-    knobs = LiveKnobs(load_knobs(), renderer, root=preset, settings=settings)
+    knobs = LiveKnobs(load_knobs(), renderer, root=preset, settings=settings,
+                      save_path=os.path.join(scratch, "plan.toml"))  # the plan it saves on closing
     live = LiveInput(FS, tap=knobs.tap)
-    audio = AudioThread(renderer, live, args.block)
+    audio = AudioThread(renderer, live, block)
     t0 = time.perf_counter()
     knobs.start()
     knobs.rebuilder.wait_idle(60.0)
@@ -170,7 +176,7 @@ def main() -> None:
     audio.start()
     time.sleep(0.5)
     print(f"load average {os.getloadavg()[0]:.2f} on {os.cpu_count()} cores (a shared machine: timings vary between runs)")
-    print(f"audio: block {args.block} ({audio.period * 1e3:.2f} ms), {renderer.banks[0].count} partials sounding")
+    print(f"audio: block {block} ({audio.period * 1e3:.2f} ms), {renderer.banks[0].count} partials sounding")
 
     print("knob move -> table swapped in / -> first block rendered with it (worker job), "
           f"target {TARGET_S * 1e3:.0f} ms:")

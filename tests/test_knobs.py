@@ -371,7 +371,8 @@ def test_knob_moves_are_coalesced_and_the_latest_wins(live_knobs, demo) -> None:
 def test_a_bad_amount_keeps_the_playing_table_and_says_why(tables, demo, tmp_path) -> None:
     renderer = _renderer(tables)
     mapping = parse_knobs({"mass": {"cc": 18, "min": -5.0}})
-    knobs = LiveKnobs(mapping, renderer, root=demo, key_range=[108], settings=table_settings(FS))
+    knobs = LiveKnobs(mapping, renderer, root=demo, key_range=[108], settings=table_settings(FS),
+                      save_path=tmp_path / "plan.toml")
     live = LiveInput(FS, tap=knobs.tap)
     knobs.start()
     try:

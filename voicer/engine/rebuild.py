@@ -18,8 +18,9 @@ spawned (not forked: the parent has PortAudio and MIDI threads) when playing sta
 warmed up with one build, so the first knob move costs no more than the others.
 
 Live tables are simulated with time steps 1.5 times those of the full tables
-(:data:`LIVE_STEP_SCALE`): one key then takes 15-45 ms from knob to block on this
-project's shared 2-core machine (the full steps: 20-60 ms), for partial levels within
+(:data:`LIVE_STEP_SCALE`): one key then takes 25-50 ms from knob to block on this
+project's shared 2-core machine (up to 60 ms for the slowest keys when it is busy; a plain
+build of a key with the full steps takes 20-60 ms), for partial levels within
 0.4 dB of the full tables (rms 0.01 dB; 2.0 times the steps would err by 2 dB in the top
 treble and fewer modes above the band by 5 dB; fewer velocity layers save no time, as the
 layers are simulated side by side).
