@@ -368,6 +368,18 @@ def build_parser() -> argparse.ArgumentParser:
     compare.add_argument("--html", metavar="FILE.html", help="a self-contained report for the client")
     compare.add_argument("--json", action="store_true", help="print JSON (schema in the README)")
     compare.set_defaults(func=_lazy("cli_voicing", "cmd_compare"))
+
+    suggest = _command(
+        sub, "suggest", help="write a voicing plan that brings the outlier hammers back to the scale",
+        description="Find the keys that stand out from the trend across the scale (as voicer compare does)\n"
+                    "and, per key, the smallest felt change (needle or harden, at the crown, the shoulders or\n"
+                    "throughout) that brings its loudness and brightness back; write it as a plan to audition.",
+        examples=["voicer suggest demo -o plan.toml", "voicer play demo --voicing plan.toml"])
+    _add_preset(suggest)
+    suggest.add_argument("-o", "--output", required=True, metavar="PLAN.toml", help="the plan written")
+    suggest.add_argument("--keys", default="21-108", metavar="RANGE", help="keys considered (default 21-108)")
+    suggest.add_argument("--force", action="store_true", help="replace an existing plan (keeping PLAN.toml.bak)")
+    suggest.set_defaults(func=_lazy("cli_voicing", "cmd_suggest"))
     return parser
 
 

@@ -1,8 +1,8 @@
-"""The voicing commands: compare (evenness before/after a plan)."""
+"""The voicing commands: compare (evenness before/after a plan), suggest (a plan for the outliers)."""
 
 from __future__ import annotations
 
-__all__ = ["cmd_compare"]
+__all__ = ["cmd_compare", "cmd_suggest"]
 
 import argparse
 import json
@@ -52,4 +52,33 @@ def cmd_compare(args: argparse.Namespace) -> int:
         for what, path in (("plot", args.plot), ("report", args.html)):
             if path:
                 print(f"{what} written to {path}")
+    return 0
+
+
+def cmd_suggest(args: argparse.Namespace) -> int:
+    import tomllib
+
+    from .io.atomic import atomic_write_bytes
+    from .report.suggest import plan_toml, suggest
+    from .tone.voicing import parse_voicing
+
+    out = Path(args.output)
+    if out.suffix != ".toml":
+        raise VoicerError(f"-o {out}: a voicing plan is a .toml file")
+    if out.exists() and not args.force:
+        raise VoicerError(f"{out} exists; give --force to replace it (the old one is kept as {out.name}.bak)")
+    preset = load_preset(find_preset(args.preset))
+    result = suggest(preset, keys=_keys(args.keys))
+    text = plan_toml(result)
+    parse_voicing(tomllib.loads(text), source=str(out))  # what is written loads back
+    atomic_write_bytes(out, text.encode("utf-8"))
+    if not result.keys:
+        print(f"wrote {out}: no outlier hammer found, the plan changes nothing")
+        return 0
+    print(f"wrote {out}: {len(result.keys)} key(s)")
+    for k in result.keys:
+        print(f"  {k.key:3d}: {k.operation} at the {k.where} by {100 * k.amount:.1f} %"
+              + (" (the largest amount tried)" if k.at_limit else ""))
+    print(f"audition it: voicer play {args.preset} --voicing {out}   (A/B with the space bar)")
+    print("Predictions: work in smaller steps and listen; needling cannot be undone.")
     return 0

@@ -49,11 +49,13 @@ __all__ = [
     "VOICING_METRICS",
     "FLAG_FLOORS",
     "FLAG_SIGMAS",
+    "CONSISTENT_FRACTION",
     "SPAN_KEYS",
     "ROBUST_ITERATIONS",
     "Evenness",
     "a_weighting_db",
     "construction_breaks",
+    "spectral_metrics",
     "trend",
     "measure",
 ]
@@ -376,7 +378,7 @@ def _scatter(keys: NDArray[np.int64], deviation: NDArray[np.float64], span: int)
         return _MAD_SD * np.nanmedian(np.abs(near - centre), axis=1)
 
 
-def _spectral_metrics(freq_hz: NDArray[np.float64], sigma_per_s: NDArray[np.float64],
+def spectral_metrics(freq_hz: NDArray[np.float64], sigma_per_s: NDArray[np.float64],
                       amplitude_n: NDArray[np.complex128]) -> dict[str, NDArray[np.float64]]:
     """Loudness, brightness, high partials and sustain of one key at each speed
     (``amplitude_n`` is (speeds, partials), summed over the unison)."""
@@ -456,7 +458,7 @@ def measure(preset: Preset, *, keys: Iterable[int] = range(21, 109), dynamics: I
         if not len(table.freq_hz):
             raise ParameterError(f"key {k} has no partial below the band limit (sample rate too low)")
         amplitude = (table.at_speeds(speeds) if tables is not None else table.amplitude_n.sum(axis=1))
-        for name, row in _spectral_metrics(table.freq_hz, table.sigma_per_s, amplitude).items():
+        for name, row in spectral_metrics(table.freq_hz, table.sigma_per_s, amplitude).items():
             values[name][i] = row
         values["attack_ms"][i] = [1e3 * _effective_contact_s(force, dt) for force, dt in zip(forces[k], blows.dt_s[k])]
 
