@@ -62,6 +62,13 @@ def test_demo_renders_both_states(capsys, tmp_path) -> None:
         assert rate == 48_000 and 30 < len(data) / rate < 40 and 0.1 < abs(data).max() < 10 ** (-1 / 20)
     a, b = sf.read(tmp_path / "demo-A.wav")[0], sf.read(tmp_path / "demo-B.wav")[0]
     assert a.shape == b.shape and not np.allclose(a, b)  # the voicing is heard
+    # The scenario (presets/voicings/kestrel-190-wear.toml): the worn hammers are the
+    # outliers the table shows and the plan treats, and the client's report is written.
+    for key in ("D3 ( 50)", "D#3 ( 51)", "E4 ( 64)", "G4 ( 67)"):
+        assert key in out
+    plan = (tmp_path / "suggested-plan.toml").read_text()
+    assert "D3 (50): harden" in plan and "E4 (64): needle" in plan and "G4 (67): needle" in plan
+    assert "needling cannot be undone" in (tmp_path / "report.html").read_text()
 
 
 def test_bad_preset_exits_2_with_one_line(capsys, tmp_path) -> None:
@@ -85,7 +92,8 @@ def test_usage_errors_exit_2(argv, capsys) -> None:
     assert info.value.code == 2
 
 
-@pytest.mark.parametrize("command", ["demo", "scale", "inspect", "render", "play", "devices", "plugins"])
+@pytest.mark.parametrize("command", ["demo", "scale", "inspect", "render", "play", "devices", "plugins", "analyze",
+                                     "fit", "record", "compare", "suggest"])
 def test_help_has_an_example(command, capsys) -> None:
     with pytest.raises(SystemExit) as info:
         main([command, "--help"])

@@ -196,11 +196,14 @@ def build_parser() -> argparse.ArgumentParser:
     sub.required = True
 
     demo = _command(
-        sub, "demo", help="render the demo passage on the demo instrument, as it is (A) and voiced (B)",
-        description="Render the bundled demo passage on the bundled demo instrument in two voicing states\n"
-                    "to WAV files (no audio device needed), and play them when an audio device exists.",
+        sub, "demo", help="the demo scenario: evenness, a suggested plan, and the passage as found (A) and voiced (B)",
+        description="The demo scenario: the bundled demo instrument as found (a few worn hammers), its\n"
+                    "evenness across the scale and a suggested plan (written with a report for the client),\n"
+                    "and the demo passage rendered as found (A) and with the plan (B) to WAV files (no audio\n"
+                    "device needed), played when an audio device exists.",
         examples=["voicer demo", "voicer demo --out-dir /tmp/demo --no-play"])
-    demo.add_argument("--out-dir", default="voicer-demo", metavar="DIR", help="where the WAV files go (default voicer-demo)")
+    demo.add_argument("--out-dir", default="voicer-demo", metavar="DIR",
+                      help="where the WAV files, the plan and the report go (default voicer-demo)")
     demo.add_argument("--no-play", action="store_true", help="only write the files")
     _audio_options(demo, block=False)
     demo.set_defaults(func=_audio("cmd_demo"))

@@ -10,6 +10,7 @@ import json
 import math
 import sys
 import threading
+import tomllib
 import time
 from pathlib import Path
 
@@ -35,7 +36,8 @@ from .tone.voicing import load_voicing
 
 CHANNELS = 2
 DEMO_MIDI = "demo-passage.mid"
-DEMO_VOICING = "kestrel-190-mellow.toml"
+#: The wear the demo scenario plants in the demo instrument ("the piano as found").
+DEMO_WEAR = "kestrel-190-wear.toml"
 
 
 def _tty() -> bool:
@@ -235,20 +237,34 @@ def _run_live(renderer: Renderer, sink: PortAudioSink, live: LiveInput, keyboard
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
+    from .report.compare import compare, format_outliers, write_report
+    from .report.suggest import plan_toml, suggest
+    from .tone.voicing import apply_voicing, load_voicing, parse_voicing
+
     preset_path = find_preset(DEMO_PIANO)
-    preset = load_preset(preset_path)
+    wear = presets_dir() / "voicings" / DEMO_WEAR
+    found = apply_voicing(load_preset(preset_path), load_voicing(wear))
     midi = presets_dir() / "midi" / DEMO_MIDI
-    voicing = presets_dir() / "voicings" / DEMO_VOICING
     out_dir = Path(args.out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
-    print(f"voicer demo: {preset.instrument['name']} ({preset_path.name}), passage {midi.name}")
-    print(f"  state A: the instrument as it is; state B: voicing plan {voicing.name} (a preview, not a promise)")
+    print(f"voicer demo: {found.instrument['name']} ({preset_path.name}) as found ({wear.name}), passage {midi.name}")
+    suggestion = suggest(found)
+    voicing = out_dir / "suggested-plan.toml"
+    text = plan_toml(suggestion)
+    parse_voicing(tomllib.loads(text), source=str(voicing))
+    atomic_write_bytes(voicing, text.encode("utf-8"))
+    voiced = apply_voicing(found, load_voicing(voicing))
+    result = compare(found, voiced, plan_name="the suggested plan")
+    print(format_outliers(result))
+    report = write_report(result, out_dir / "report.html")
+    print(f"  suggested plan: {voicing}; report for the client: {report}")
+    print("  state A: the piano as found; state B: with the suggested plan (a preview, not a promise)")
     files = []
     for state in ("A", "B"):
         path = out_dir / f"demo-{state}.wav"
-        result = render_file(preset, midi, path, voicing=voicing, sample_rate=args.sample_rate, block=256,
-                             gain_db=args.gain_db, tail_s=3.0, subtype=None, state=state)
-        print("  " + _summary(path, result, args.sample_rate))
+        rendered = render_file(found, midi, path, voicing=voicing, sample_rate=args.sample_rate, block=256,
+                               gain_db=args.gain_db, tail_s=3.0, subtype=None, state=state)
+        print("  " + _summary(path, rendered, args.sample_rate))
         files.append(path)
     print(f"files: {', '.join(str(p.resolve()) for p in files)}")
     if not args.no_play:

@@ -9,7 +9,8 @@ flagged keys and the rms deviations.
 
 from __future__ import annotations
 
-__all__ = ["Comparison", "compare", "comparison_json", "format_comparison", "plot_comparison", "write_report"]
+__all__ = ["Comparison", "compare", "comparison_json", "format_comparison", "format_outliers", "plot_comparison",
+           "write_report"]
 
 from dataclasses import dataclass
 from pathlib import Path
@@ -115,6 +116,34 @@ def format_comparison(c: Comparison, *, dynamic: str = "mf") -> str:
     return "\n".join(lines)
 
 
+def format_outliers(c: Comparison) -> str:
+    """The short evenness table: the outlier keys with their deviations per dynamic, and
+    the rms deviations (before and after a plan)."""
+    b, a = c.before, c.after
+    keys = sorted(set(b.flagged_keys()) | set(a.flagged_keys() if a is not None else []))
+    lines = [f"evenness across the scale (deviation from the trend; brightness in harmonics, loudness in dB; "
+             f"{' / '.join(b.dynamics)}):"]
+    for key in keys:
+        i = int(np.flatnonzero(b.keys == key)[0])
+        row = f"  {key_name(key):>4} ({key:3d})  brightness " + " ".join(f"{v:+.2f}" for v in b.deviation["brightness"][i])
+        row += "  loudness " + " ".join(f"{v:+.1f}" for v in b.deviation["loudness_db"][i])
+        if a is not None:
+            row += "  -> after: " + " ".join(f"{v:+.2f}" for v in a.deviation["brightness"][i])
+            row += " / " + " ".join(f"{v:+.1f}" for v in a.deviation["loudness_db"][i])
+        lines.append(row)
+    if not keys:
+        lines.append("  no outlier hammer")
+    for metric, name in SUMMARY[:2]:
+        text = f"  rms deviation of {name}: {b.rms_deviation(metric):.3f}"
+        if a is not None:
+            text += f" -> {a.rms_deviation(metric):.3f}"
+            if keys:
+                text += f" (outlier keys: {b.rms_deviation(metric, keys=keys):.3f} -> " \
+                        f"{a.rms_deviation(metric, keys=keys):.3f})"
+        lines.append(text + f" {METRIC_INFO[metric][0]}")
+    return "\n".join(lines)
+
+
 def _spectra(preset: Preset, keys: Sequence[int], speed: float) -> dict[int, tuple[np.ndarray, np.ndarray]]:
     tables = simulate_blows(preset, keys, [speed]).tables
     out = {}
@@ -179,8 +208,14 @@ def write_report(c: Comparison, path: str | Path, *, dynamic: str = "mf") -> Pat
 
     b, a = c.before, c.after
     j = b.dynamics.index(dynamic)
-    figs = [(figure_png(f), alt) for f, alt in zip(plot_comparison(c, dynamic=dynamic),
-                                                   ("evenness across the scale", "spectra of the flagged keys"))]
+    from ..errors import VoicerError
+
+    notes = []
+    try:
+        figs = [(figure_png(f), alt) for f, alt in zip(plot_comparison(c, dynamic=dynamic),
+                                                       ("evenness across the scale", "spectra of the flagged keys"))]
+    except VoicerError as exc:  # no matplotlib: the report without its plots
+        figs, notes = [], [f"(No plots in this report: {exc}.)"]
     flagged = set(b.flagged_keys())
     columns = ["key", "loudness (dB)", "deviation"] + (["after", "deviation after"] if a else []) \
         + ["brightness", "deviation"] + (["after", "deviation after"] if a else [])
@@ -198,7 +233,7 @@ def write_report(c: Comparison, path: str | Path, *, dynamic: str = "mf") -> Pat
                f"{METRIC_INFO[metric][0]}"
         summary.append(text + (f" before, {a.rms_deviation(metric):.3f} after." if a is not None else "."))
     title = f"Evenness of {c.preset.instrument['name'] or 'the piano'}" + (f", with {c.plan_name}" if c.plan_name else "")
-    sections = [Section("Summary", paragraphs=summary, figures=figs[:1]),
+    sections = [Section("Summary", paragraphs=summary + notes, figures=figs[:1]),
                 Section(f"Per key at {dynamic}", columns=columns, rows=rows,
                         highlight=frozenset(i for i, k in enumerate(b.keys) if int(k) in flagged), figures=figs[1:])]
     caution = ("These are predictions of a model, not measurements of the piano. Voicing is done in small steps, "
