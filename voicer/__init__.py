@@ -24,6 +24,18 @@ from .physics.tuning import A4_HZ, HIGHEST_KEY, KEYS, LOWEST_KEY, equal_tempered
 from .resources import DEMO_PIANO, bundled_pianos, find_preset
 from .tone.params import INSTRUMENT_PARAMS, KEY_PARAMS, Param
 from .tone.preset import Preset, load_preset, parse_preset, save_preset
+from .tone.voicing import (
+    OPERATIONS,
+    Change,
+    Operation,
+    VoicedPreset,
+    VoicingPlan,
+    apply_voicing,
+    compose,
+    load_voicing,
+    parse_voicing,
+    reverse_plan,
+)
 
 __all__ = [
     "__version__",
@@ -57,4 +69,14 @@ __all__ = [
     "load_preset",
     "parse_preset",
     "save_preset",
+    "OPERATIONS",
+    "Change",
+    "Operation",
+    "VoicedPreset",
+    "VoicingPlan",
+    "apply_voicing",
+    "compose",
+    "load_voicing",
+    "parse_voicing",
+    "reverse_plan",
 ]
