@@ -33,15 +33,20 @@ def suggestion(worn):
 def test_finds_the_planted_keys_and_no_others(suggestion) -> None:
     """Harder felt sounds brighter, softer duller (common practice): the bright hammer is
     needled, the dull ones hardened, nothing else is touched."""
-    assert [k.key for k in suggestion.keys] == sorted(PLANTED)
+    assert sorted({k.key for k in suggestion.keys}) == sorted(PLANTED)
     for k in suggestion.keys:
-        assert k.operation == ("needle" if PLANTED[k.key] > 1 else "harden"), k
-        assert (k.felt_factor < 1) == (k.operation == "needle") and not k.at_limit
+        assert k.operation.op == ("needle" if PLANTED[k.key] > 1 else "harden"), k
+        assert k.operation.keys == (k.key,)
+    # The planted faults exceed one operation's safe range (30 %): each key gets a step
+    # at the range's limit and then a smaller one, in order.
+    for key in PLANTED:
+        steps = [k for k in suggestion.keys if k.key == key]
+        assert 2 <= len(steps) <= 3 and steps[0].at_limit and not steps[-1].at_limit, steps
 
 
 def test_the_plan_evens_the_treated_keys(worn, suggestion) -> None:
     """The written plan, loaded back and applied, cuts the treated keys' rms deviation
-    from the trend by at least 70 % in brightness and loudness (measured 82 % and 75 %),
+    from the trend by at least 70 % in brightness and loudness (measured 96 % and 95 %),
     and no key is flagged afterwards."""
     plan = parse_voicing(tomllib.loads(plan_toml(suggestion)))
     after = measure(apply_voicing(worn, plan))
@@ -65,7 +70,9 @@ def test_command_writes_a_plan_and_never_overwrites_without_force(worn, tmp_path
     assert main(["suggest", str(preset), "-o", str(out), "--keys", "40-75"]) == 0
     text = out.read_text()
     assert "needling cannot be undone" in text and "E4 (64): needle" in text
-    assert {c.keys for c in load_voicing(out).changes} == {(50,), (51,), (64,)}
+    plan = load_voicing(out)
+    assert {c.keys for c in plan.changes} == {(50,), (51,), (64,)}
+    assert {c.op for c in plan.changes} == {"needle", "harden"}
     assert main(["suggest", str(preset), "-o", str(out), "--keys", "40-75"]) == 2
     assert "--force" in capsys.readouterr().err
     assert main(["suggest", str(preset), "-o", str(out), "--keys", "40-75", "--force"]) == 0

@@ -77,8 +77,7 @@ def cmd_suggest(args: argparse.Namespace) -> int:
         return 0
     print(f"wrote {out}: {len(result.keys)} key(s)")
     for k in result.keys:
-        print(f"  {k.key:3d}: {k.operation} at the {k.where} by {100 * k.amount:.1f} %"
-              + (" (the largest amount tried)" if k.at_limit else ""))
+        print(f"  {k.key:3d}: {k.operation.describe()}" + (" (the safe range's largest)" if k.at_limit else ""))
     print(f"audition it: voicer play {args.preset} --voicing {out}   (A/B with the space bar)")
     print("Predictions: work in smaller steps and listen; needling cannot be undone.")
     return 0
