@@ -46,6 +46,7 @@ BLOCK = 256
 KEYS = [60, 64, 67, 108]
 GAIN_DB = -60.0  # well below the limiter's knee: the spectrum is the tables'
 MELLOW = presets_dir() / "voicings" / "kestrel-190-mellow.toml"
+RECITAL = presets_dir() / "voicings" / "kestrel-190-recital.toml"
 WAIT_S = 60.0  # a rebuild takes ~50 ms; this only keeps a broken worker from hanging the suite
 
 
@@ -228,8 +229,12 @@ def test_saving_again_keeps_the_old_plan_as_bak(demo, tmp_path) -> None:
     assert "72 C5: felt x2.000" in path.read_text()
 
 
-def test_saved_plan_on_top_of_a_plan_starts_with_its_changes(demo, tmp_path) -> None:
-    base_plan = load_voicing(MELLOW)
+@pytest.mark.parametrize("plan_file", [MELLOW, RECITAL], ids=["changes", "trade-operations"])
+def test_saved_plan_on_top_of_a_plan_starts_with_its_changes(demo, tmp_path, plan_file) -> None:
+    """A plan of field changes (format 1) or of trade operations (format 2, the bundled
+    spring-service plan) playing started from comes first, in its order, in the saved
+    plan, which reproduces the knobs' state exactly."""
+    base_plan = load_voicing(plan_file)
     state = _knobbed(apply_voicing(demo, base_plan))
     path = save_plan(tmp_path / "plan.toml", state, root=demo, base_plan=base_plan)
     plan = load_voicing(path)
@@ -237,7 +242,7 @@ def test_saved_plan_on_top_of_a_plan_starts_with_its_changes(demo, tmp_path) -> 
     voiced, want = apply_voicing(demo, plan).resolved, state.preset().resolved
     for name in want:
         np.testing.assert_array_equal(voiced[name], want[name], err_msg=name)
-    assert f"Started from the plan {MELLOW}" in path.read_text()
+    assert f"Started from the plan {plan_file}" in path.read_text()
 
 
 def test_plan_text_without_amounts_is_a_valid_empty_plan(demo) -> None:

@@ -29,7 +29,7 @@ from ..errors import VoicerError
 from ..io.atomic import atomic_write_bytes
 from ..physics.tuning import key_name
 from ..tone.preset import Preset
-from ..tone.voicing import VoicingPlan, apply_voicing, parse_voicing
+from ..tone.voicing import Operation, VoicingPlan, apply_voicing, parse_voicing
 from .knob_state import KnobState, keys_text
 from .knobs import KNOB_SPECS
 
@@ -113,15 +113,15 @@ def plan_text(knobs: KnobState, *, root: Preset, base_plan: VoicingPlan | None =
     """
     now = now or dt.datetime.now()
     amounts = knobs.snapshot()[1] if amounts is None else amounts
-    changes = [{"keys": _keys_value(c.keys), "field": c.field, c.op: c.amount}
-               for c in (base_plan.changes if base_plan is not None else ())]
-    changes += _changes(amounts)
+    # The starting plan's steps (changes and trade operations, in their order), then the knobs'.
+    steps = [("operation" if isinstance(c, Operation) else "change", c.to_table())
+             for c in (base_plan.changes if base_plan is not None else ())]
+    steps += [("change", c) for c in _changes(amounts)]
     name = f"{base_plan.name or 'plan'} + live knobs" if base_plan is not None else "live knobs"
-    data: dict[str, Any] = {"format": 1, "name": name,
+    data: dict[str, Any] = {"format": 2 if any(kind == "operation" for kind, _ in steps) else 1, "name": name,
                             "description": f"amounts set with the live knobs of voicer play, {now:%Y-%m-%d %H:%M}"}
-    if changes:
-        data["change"] = changes
-    return "\n".join(_header(knobs, amounts, root=root, base_plan=base_plan, now=now)) + tomli_w.dumps(data)
+    body = tomli_w.dumps(data) + "".join(f"\n[[{kind}]]\n" + tomli_w.dumps(table) for kind, table in steps)
+    return "\n".join(_header(knobs, amounts, root=root, base_plan=base_plan, now=now)) + body
 
 
 def save_plan(path: str | Path, knobs: KnobState, *, root: Preset, base_plan: VoicingPlan | None = None,
