@@ -67,3 +67,14 @@ def test_bad_arguments(capsys) -> None:
     assert code == 2 and "21..108" in err
     code, _, err = run(capsys, "compare", "demo", "--voicing", "nowhere.toml")
     assert code == 2 and "nowhere.toml" in err
+    code, _, err = run(capsys, "compare", "demo", "--keys", "abc")
+    assert code == 2 and "--keys 'abc'" in err and err.count("\n") == 1
+    code, _, err = run(capsys, "compare", "demo", "--keys", "40-50,60-70")
+    assert code == 0
+
+
+def test_suggest_refuses_an_output_it_cannot_write(capsys, tmp_path) -> None:
+    for out, words in ((tmp_path / "nowhere" / "plan.toml", "does not exist"), (tmp_path / "plan.txt", ".toml file")):
+        code, _, err = run(capsys, "suggest", "demo", "-o", str(out))
+        assert code == 2 and words in err and err.count("\n") == 1, err
+    assert list(tmp_path.iterdir()) == []

@@ -10,7 +10,6 @@ import json
 import math
 import sys
 import threading
-import tomllib
 import time
 from pathlib import Path
 
@@ -238,8 +237,8 @@ def _run_live(renderer: Renderer, sink: PortAudioSink, live: LiveInput, keyboard
 
 def cmd_demo(args: argparse.Namespace) -> int:
     from .report.compare import compare, format_outliers, write_report
-    from .report.suggest import plan_toml, suggest
-    from .tone.voicing import apply_voicing, load_voicing, parse_voicing
+    from .report.suggest import suggest, write_plan
+    from .tone.voicing import apply_voicing
 
     preset_path = find_preset(DEMO_PIANO)
     wear = presets_dir() / "voicings" / DEMO_WEAR
@@ -250,10 +249,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
     print(f"voicer demo: {found.instrument['name']} ({preset_path.name}) as found ({wear.name}), passage {midi.name}")
     suggestion = suggest(found)
     voicing = out_dir / "suggested-plan.toml"
-    text = plan_toml(suggestion)
-    parse_voicing(tomllib.loads(text), source=str(voicing))
-    atomic_write_bytes(voicing, text.encode("utf-8"))
-    voiced = apply_voicing(found, load_voicing(voicing))
+    voiced = apply_voicing(found, write_plan(suggestion, voicing))
     result = compare(found, voiced, plan_name="the suggested plan")
     print(format_outliers(result))
     report = write_report(result, out_dir / "report.html")

@@ -14,6 +14,7 @@ from typing import Any, Sequence
 from tqdm import tqdm
 
 from .errors import VoicerError
+from .io.atomic import check_output
 from .physics.tuning import key_name
 from .resources import find_preset
 from .tone.preset import Preset, load_preset, save_preset
@@ -163,12 +164,7 @@ def cmd_analyze(args: argparse.Namespace) -> int:
 
 def cmd_fit(args: argparse.Namespace) -> int:
     out = Path(args.output)
-    if out.exists() and not args.force:
-        raise VoicerError(f"{out} exists; give --force to replace it (the old one is kept as {out.name}.bak)")
-    if out.suffix != ".toml":
-        raise VoicerError(f"-o {out}: a preset is a .toml file")
-    if not out.parent.is_dir():
-        raise VoicerError(f"-o {out}: folder {out.parent} does not exist")
+    check_output(out, suffix=".toml", what="a preset", force=args.force)
     base = _base(args)
     analyses = _analyze_all(args.recordings, a4_hz=base.instrument["a4_hz"])
     with tqdm(total=0, unit="key", desc="fit", disable=not _tty(), leave=False) as bar:

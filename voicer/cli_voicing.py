@@ -9,14 +9,12 @@ import json
 import sys
 from pathlib import Path
 
+from .engine.knob_state import parse_key_spec
 from .errors import VoicerError
+from .io.atomic import check_output
 from .resources import find_preset
 from .tone.preset import load_preset
-from .tone.voicing import apply_voicing, load_voicing, parse_keys
-
-
-def _keys(text: str) -> list[int]:
-    return list(parse_keys(text if "-" in text else int(text), where="--keys"))
+from .tone.voicing import apply_voicing, load_voicing
 
 
 def cmd_compare(args: argparse.Namespace) -> int:
@@ -28,7 +26,7 @@ def cmd_compare(args: argparse.Namespace) -> int:
         plan = load_voicing(args.voicing)
         voiced = apply_voicing(preset, plan)
         plan_name = plan.name or Path(args.voicing).stem
-    keys = _keys(args.keys)
+    keys = parse_key_spec(args.keys, "--keys")
     if len(keys) < 8:
         raise VoicerError(f"--keys {args.keys}: evenness needs a trend over at least 8 keys")
     result = compare(preset, voiced, keys=keys, plan_name=plan_name)
@@ -56,22 +54,13 @@ def cmd_compare(args: argparse.Namespace) -> int:
 
 
 def cmd_suggest(args: argparse.Namespace) -> int:
-    import tomllib
-
-    from .io.atomic import atomic_write_bytes
-    from .report.suggest import plan_toml, suggest
-    from .tone.voicing import parse_voicing
+    from .report.suggest import suggest, write_plan
 
     out = Path(args.output)
-    if out.suffix != ".toml":
-        raise VoicerError(f"-o {out}: a voicing plan is a .toml file")
-    if out.exists() and not args.force:
-        raise VoicerError(f"{out} exists; give --force to replace it (the old one is kept as {out.name}.bak)")
+    check_output(out, suffix=".toml", what="a voicing plan", force=args.force)
     preset = load_preset(find_preset(args.preset))
-    result = suggest(preset, keys=_keys(args.keys))
-    text = plan_toml(result)
-    parse_voicing(tomllib.loads(text), source=str(out))  # what is written loads back
-    atomic_write_bytes(out, text.encode("utf-8"))
+    result = suggest(preset, keys=parse_key_spec(args.keys, "--keys"))
+    write_plan(result, out)
     if not result.keys:
         print(f"wrote {out}: no outlier hammer found, the plan changes nothing")
         return 0

@@ -32,8 +32,9 @@ CHORD_S = 0.3
 _RECENT = 32  # note-ons remembered for the last chord
 
 
-def parse_key_spec(text: str) -> tuple[int, ...]:
-    """Keys from a command-line list of ranges and keys, e.g. ``52-67`` or ``60,64,67``."""
+def parse_key_spec(text: str, option: str = "--knob-keys") -> tuple[int, ...]:
+    """Keys from a command-line list of ranges and keys, e.g. ``52-67`` or ``60,64,67``;
+    ``option`` names the option in error messages."""
     keys: set[int] = set()
     for part in text.split(","):
         lo_text, sep, hi_text = part.strip().partition("-")
@@ -41,9 +42,9 @@ def parse_key_spec(text: str) -> tuple[int, ...]:
             lo = int(lo_text)
             hi = int(hi_text) if sep else lo
         except ValueError:
-            raise ParameterError(f"--knob-keys {text!r}: {part.strip()!r} is not a key or a range like 52-67") from None
+            raise ParameterError(f"{option} {text!r}: {part.strip()!r} is not a key or a range like 52-67") from None
         if not LOWEST_KEY <= lo <= hi <= HIGHEST_KEY:
-            raise ParameterError(f"--knob-keys {text!r}: {part.strip()!r} must be keys within "
+            raise ParameterError(f"{option} {text!r}: {part.strip()!r} must be keys within "
                                  f"{LOWEST_KEY}..{HIGHEST_KEY}, low to high")
         keys.update(range(lo, hi + 1))
     return tuple(sorted(keys))

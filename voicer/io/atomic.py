@@ -6,17 +6,36 @@ the old file intact, and a save over an existing file keeps the old one as ``.ba
 
 from __future__ import annotations
 
-__all__ = ["atomic_write_bytes", "backup_path"]
+__all__ = ["atomic_write_bytes", "backup_path", "check_output"]
 
 import os
 import shutil
 import tempfile
 from pathlib import Path
 
+from ..errors import VoicerError
+
 
 def backup_path(path: Path) -> Path:
     """Where the previous version of ``path`` is kept: ``name.ext.bak``."""
     return path.with_name(path.name + ".bak")
+
+
+def check_output(path: Path, *, suffix: str, what: str, force: bool) -> None:
+    """Refuse, before any work, an output ``-o path`` that would be lost or not written:
+    an existing file without ``force``, another suffix, a folder that does not exist.
+
+    Raises
+    ------
+    VoicerError
+        Naming the file and what to do (``what``: e.g. "a preset").
+    """
+    if path.exists() and not force:
+        raise VoicerError(f"{path} exists; give --force to replace it (the old one is kept as {path.name}.bak)")
+    if path.suffix != suffix:
+        raise VoicerError(f"-o {path}: {what} is a {suffix} file")
+    if not path.parent.is_dir():
+        raise VoicerError(f"-o {path}: folder {path.parent} does not exist")
 
 
 def atomic_write_bytes(path: str | os.PathLike[str], data: bytes, *, backup: bool = True) -> Path:

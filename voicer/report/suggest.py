@@ -19,9 +19,11 @@ needling cannot be undone, so the technician works in smaller steps and listens.
 
 from __future__ import annotations
 
-__all__ = ["STEP", "CLOSE_ENOUGH", "MAX_STEPS", "KeySuggestion", "Suggestion", "suggest", "plan_toml"]
+__all__ = ["STEP", "CLOSE_ENOUGH", "MAX_STEPS", "KeySuggestion", "Suggestion", "suggest", "plan_toml", "write_plan"]
 
+import tomllib
 from dataclasses import dataclass
+from pathlib import Path
 from typing import Iterable
 
 import numpy as np
@@ -30,7 +32,8 @@ import tomli_w
 from ..physics.tuning import key_name
 from ..tone.preset import Preset
 from ..tone.tables import TableSettings, simulate_variants
-from ..tone.voicing import OPERATIONS, WHERES, Operation, VoicingPlan, apply_voicing
+from ..io.atomic import atomic_write_bytes
+from ..tone.voicing import OPERATIONS, WHERES, Operation, VoicingPlan, apply_voicing, parse_voicing
 from .evenness import FLAG_FLOORS, VOICING_METRICS, Evenness, measure, spectral_metrics
 
 #: Amount step of the candidates, percent.
@@ -146,3 +149,12 @@ def plan_toml(s: Suggestion, *, name: str = "suggested: outlier hammers back to 
                   f"#   predicted after: {devs(k.deviation_after)}",
                   "[[operation]]", tomli_w.dumps(k.operation.to_table()).rstrip()]
     return "\n".join(lines) + "\n"
+
+
+def write_plan(s: Suggestion, path: str | Path) -> VoicingPlan:
+    """Write the suggestion's plan atomically (a replaced file is kept as ``.bak``) after
+    checking that it reads back as a valid plan; returns the plan as read back."""
+    text = plan_toml(s)
+    plan = parse_voicing(tomllib.loads(text), source=str(path))
+    atomic_write_bytes(path, text.encode("utf-8"))
+    return plan
