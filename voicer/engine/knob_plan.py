@@ -29,7 +29,7 @@ from ..errors import VoicerError
 from ..io.atomic import atomic_write_bytes
 from ..physics.tuning import key_name
 from ..tone.preset import Preset
-from ..tone.voicing import Operation, VoicingPlan, apply_voicing, parse_voicing
+from ..tone.voicing import Operation, VoicingPlan, apply_voicing, keys_value, parse_voicing
 from .knob_state import KnobState, keys_text
 from .knobs import KNOB_SPECS
 
@@ -37,16 +37,6 @@ from .knobs import KNOB_SPECS
 def default_plan_path(now: dt.datetime | None = None) -> Path:
     """``voicing-YYYYMMDD-HHMMSS.toml`` in the current folder."""
     return Path.cwd() / f"voicing-{(now or dt.datetime.now()):%Y%m%d-%H%M%S}.toml"
-
-
-def _keys_value(keys: list[int] | tuple[int, ...]) -> int | str | list[int]:
-    """One key, a range ``"52-67"`` or a list, as a plan writes them."""
-    keys = sorted(keys)
-    if len(keys) == 1:
-        return keys[0]
-    if keys[-1] - keys[0] == len(keys) - 1:
-        return f"{keys[0]}-{keys[-1]}"
-    return keys
 
 
 def _changes(amounts: dict[int, dict[str, float]]) -> list[dict[str, Any]]:
@@ -57,7 +47,7 @@ def _changes(amounts: dict[int, dict[str, float]]) -> list[dict[str, Any]]:
             if spec.name in by_knob:
                 groups.setdefault(by_knob[spec.name], []).append(key)
         for amount, keys in sorted(groups.items(), key=lambda item: item[1][0]):
-            out.append({"keys": _keys_value(keys), "field": spec.field, spec.op: amount})
+            out.append({"keys": keys_value(tuple(keys)), "field": spec.field, spec.op: amount})  # keys ascending
     return out
 
 

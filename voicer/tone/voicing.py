@@ -102,6 +102,7 @@ undone, whatever a preview shows.
 from __future__ import annotations
 
 __all__ = [
+    "keys_value",
     "FORMATS",
     "SPILL",
     "COMPRESSION_ANCHORS_MM",
@@ -227,7 +228,7 @@ class Change:
 
     def to_table(self) -> dict[str, Any]:
         """The ``[[change]]`` table that reads back as this change."""
-        return {"keys": _keys_value(self.keys), "field": self.field, self.op: self.amount}
+        return {"keys": keys_value(self.keys), "field": self.field, self.op: self.amount}
 
 
 @dataclass(frozen=True)
@@ -257,7 +258,7 @@ class Operation:
     def to_table(self) -> dict[str, Any]:
         """The ``[[operation]]`` table that reads back as this operation (a reversed
         operation's amounts may lie outside the ranges a plan file is held to)."""
-        return {"op": self.op, "keys": _keys_value(self.keys), **self.amounts}
+        return {"op": self.op, "keys": keys_value(self.keys), **self.amounts}
 
 
 Step = Union[Change, Operation]
@@ -291,7 +292,8 @@ class VoicedPreset(Preset):
         return all(getattr(self, f.name) == getattr(other, f.name) for f in fields(Preset) if f.compare)
 
 
-def _keys_value(keys: tuple[int, ...]) -> int | str | list[int]:
+def keys_value(keys: tuple[int, ...]) -> int | str | list[int]:
+    """Keys (ascending) as a plan writes them: one key, a range ``"52-67"`` or a list."""
     if len(keys) == 1:
         return keys[0]
     if keys[-1] - keys[0] == len(keys) - 1:
