@@ -6,7 +6,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from voicer.analysis.fit import DYNAMIC_VELOCITY
+from voicer.tone.velocity import DYNAMIC_VELOCITY
 from voicer.errors import ParameterError
 from voicer.report.evenness import (
     DYNAMICS,

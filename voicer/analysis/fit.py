@@ -25,15 +25,12 @@ from ..errors import PresetError
 from ..tone.measured import parse_measured_key
 from ..tone.preset import Preset
 from ..tone.tables import TableSettings
-from ..tone.velocity import hammer_speed
+from ..tone.velocity import DYNAMIC_VELOCITY, hammer_speed  # markings in file names
 from .felt_fit import FeltFit, StrikeLevels, fit_felt
 from .losses import LossFit, fit_losses
 from .note import NoteAnalysis, RecordingAnalysis, has_level
 from .preset_out import KeyFit, fitted_preset
 
-#: MIDI velocities taken for dynamic markings in file names (common practice, approximate:
-#: the markings are the player's, the velocities a middle reading of each).
-DYNAMIC_VELOCITY = {"ppp": 16, "pp": 28, "p": 44, "mp": 58, "mf": 72, "f": 88, "ff": 104, "fff": 118}
 #: T60 stored for an aftersound that did not decay measurably within the note: longer than
 #: any piano partial rings (the longest bass aftersounds last some tens of seconds, from
 #: memory), so the replay holds it as measured, without inventing a decay.

@@ -67,12 +67,11 @@ from typing import Any, Iterable, Mapping
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-from ..analysis.fit import DYNAMIC_VELOCITY
 from ..errors import ParameterError
 from ..physics.strings import t60_s
 from ..tone.preset import Preset
 from ..tone.tables import ModalTables, TableSettings, simulate_blows
-from ..tone.velocity import hammer_speed
+from ..tone.velocity import DYNAMIC_VELOCITY, hammer_speed
 from .spectrum import spectral_centroid_hz
 
 #: MIDI velocity of each dynamic measured (the fit's readings of the markings).

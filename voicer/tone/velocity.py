@@ -8,7 +8,7 @@ dynamic range of a grand; softer playing goes lower. The map is set per preset:
 
 from __future__ import annotations
 
-__all__ = ["DEFAULT_LAYERS", "DEFAULT_MIN_SPEED_M_S", "DEFAULT_MAX_SPEED_M_S", "layer_speeds", "hammer_speed"]
+__all__ = ["DYNAMIC_VELOCITY", "DEFAULT_LAYERS", "DEFAULT_MIN_SPEED_M_S", "DEFAULT_MAX_SPEED_M_S", "layer_speeds", "hammer_speed"]
 
 from typing import Mapping
 
@@ -17,6 +17,9 @@ from numpy.typing import ArrayLike, NDArray
 
 from ..errors import ParameterError
 
+#: MIDI velocities taken for dynamic markings (common practice, approximate: the markings
+#: are the player's, the velocities a middle reading of each).
+DYNAMIC_VELOCITY = {"ppp": 16, "pp": 28, "p": 44, "mp": 58, "mf": 72, "f": 88, "ff": 104, "fff": 118}
 DEFAULT_LAYERS = 16
 DEFAULT_MIN_SPEED_M_S = 0.5
 DEFAULT_MAX_SPEED_M_S = 6.0
