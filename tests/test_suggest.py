@@ -57,6 +57,12 @@ def test_the_plan_evens_the_treated_keys(worn, suggestion) -> None:
     assert after.flagged_keys() == []
 
 
+def test_progress_over_the_outlier_keys(worn, suggestion) -> None:
+    calls = []
+    suggest(worn, evenness=suggestion.evenness, on_key=lambda done, total: calls.append((done, total)))
+    assert calls == [(1, 3), (2, 3), (3, 3)]
+
+
 def test_an_even_scale_gets_an_empty_plan(demo, tmp_path, capsys) -> None:
     out = tmp_path / "plan.toml"
     assert main(["suggest", "demo", "-o", str(out)]) == 0

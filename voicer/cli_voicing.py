@@ -9,6 +9,8 @@ import json
 import sys
 from pathlib import Path
 
+from tqdm import tqdm
+
 from .engine.knob_state import parse_key_spec
 from .errors import VoicerError
 from .io.atomic import check_output
@@ -59,7 +61,12 @@ def cmd_suggest(args: argparse.Namespace) -> int:
     out = Path(args.output)
     check_output(out, suffix=".toml", what="a voicing plan", force=args.force)
     preset = load_preset(find_preset(args.preset))
-    result = suggest(preset, keys=parse_key_spec(args.keys, "--keys"))
+    with tqdm(total=0, unit="key", desc="suggest", disable=not sys.stderr.isatty(), leave=False) as bar:
+        def step(done: int, total: int) -> None:
+            bar.total = total
+            bar.update(1)
+
+        result = suggest(preset, keys=parse_key_spec(args.keys, "--keys"), on_key=step)
     write_plan(result, out)
     if not result.keys:
         print(f"wrote {out}: no outlier hammer found, the plan changes nothing")

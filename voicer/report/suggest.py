@@ -24,7 +24,7 @@ __all__ = ["STEP", "CLOSE_ENOUGH", "MAX_STEPS", "KeySuggestion", "Suggestion", "
 import tomllib
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Iterable
+from typing import Callable, Iterable
 
 import numpy as np
 import tomli_w
@@ -77,11 +77,14 @@ def _score(dev: dict[str, np.ndarray], scale: dict[str, np.ndarray]) -> float:
 
 
 def suggest(preset: Preset, *, keys: Iterable[int] = range(21, 109), evenness: Evenness | None = None,
-            settings: TableSettings = TableSettings()) -> Suggestion:
-    """Felt operations for the outlier keys of ``preset`` (see the module docstring)."""
+            settings: TableSettings = TableSettings(),
+            on_key: Callable[[int, int], None] | None = None) -> Suggestion:
+    """Felt operations for the outlier keys of ``preset`` (see the module docstring);
+    ``on_key(done, total)`` is called after each outlier key (progress)."""
     ev = evenness if evenness is not None else measure(preset, keys=keys, settings=settings)
     out = []
-    for key in ev.flagged_keys():
+    outliers = ev.flagged_keys()
+    for done, key in enumerate(outliers, start=1):
         i = int(np.flatnonzero(ev.keys == key)[0])
         before = {m: ev.deviation[m][i].copy() for m in VOICING_METRICS}
         trend = {m: ev.trend[m][i] for m in VOICING_METRICS}
@@ -122,6 +125,8 @@ def suggest(preset: Preset, *, keys: Iterable[int] = range(21, 109), evenness: E
             current, dev, score = variants[j][0], devs[j], float(scores[j])
             if not limit:
                 break  # a fault within one step's range: done
+        if on_key is not None:
+            on_key(done, len(outliers))
     return Suggestion(evenness=ev, keys=tuple(out))
 
 
