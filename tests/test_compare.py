@@ -36,7 +36,7 @@ def test_json_before_and_after_a_plan(capsys) -> None:
     for dyn in ("pp", "mf", "ff"):
         r = rows[(60, dyn)]
         assert r["after"]["brightness"] < r["before"]["brightness"]
-        assert r["after"]["loudness_db"] < r["before"]["loudness_db"]
+        assert r["after"]["loudness_phon"] < r["before"]["loudness_phon"]
         assert rows[(45, dyn)]["after"] == rows[(45, dyn)]["before"]
         assert r["deviation_before"]["brightness"] == pytest.approx(
             r["before"]["brightness"] - r["trend_before"]["brightness"], abs=2e-4)

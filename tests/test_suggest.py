@@ -51,7 +51,7 @@ def test_the_plan_evens_the_treated_keys(worn, suggestion) -> None:
     plan = parse_voicing(tomllib.loads(plan_toml(suggestion)))
     after = measure(apply_voicing(worn, plan))
     treated = [k.key for k in suggestion.keys]
-    for metric in ("brightness", "loudness_db"):
+    for metric in ("brightness", "loudness_phon"):
         before = suggestion.evenness.rms_deviation(metric, keys=treated)
         assert after.rms_deviation(metric, keys=treated) <= 0.3 * before, metric
     assert after.flagged_keys() == []

@@ -24,7 +24,7 @@ from ..tone.tables import simulate_blows
 from .evenness import METRIC_INFO, METRICS, VOICING_METRICS, Evenness, measure
 
 #: The summary's metrics and their JSON names.
-SUMMARY = (("brightness", "brightness"), ("loudness_db", "loudness"), ("high_partials_db", "high_partials"))
+SUMMARY = (("brightness", "brightness"), ("loudness_phon", "loudness"), ("high_partials_db", "high_partials"))
 
 
 @dataclass(frozen=True)
@@ -87,7 +87,7 @@ def format_comparison(c: Comparison, *, dynamic: str = "mf") -> str:
     """The per-key table at one dynamic (flagged keys marked), then the summary."""
     b, a = c.before, c.after
     j = b.dynamics.index(dynamic)
-    head = f"{'key':>9}  {'loudness dB':>11} {'dev':>6}"
+    head = f"{'key':>9}  {'loudness phon':>13} {'dev':>6}"
     head += f" {'after':>7} {'dev':>6}" if a is not None else ""
     head += f"  {'brightness':>10} {'dev':>6}"
     head += f" {'after':>7} {'dev':>6}" if a is not None else ""
@@ -97,7 +97,7 @@ def format_comparison(c: Comparison, *, dynamic: str = "mf") -> str:
     for i, key in enumerate(b.keys):
         mark = "*" if int(key) in flagged else " "
         row = f"{mark}{key_name(int(key)):>4} ({int(key):3d})  "
-        for m, width in (("loudness_db", 11), ("brightness", 10)):
+        for m, width in (("loudness_phon", 13), ("brightness", 10)):
             row += f"{b.values[m][i, j]:{width}.2f} {b.deviation[m][i, j]:+6.2f}"
             if a is not None:
                 row += f" {a.values[m][i, j]:7.2f} {a.deviation[m][i, j]:+6.2f}"
@@ -121,15 +121,15 @@ def format_outliers(c: Comparison) -> str:
     the rms deviations (before and after a plan)."""
     b, a = c.before, c.after
     keys = sorted(set(b.flagged_keys()) | set(a.flagged_keys() if a is not None else []))
-    lines = [f"evenness across the scale (deviation from the trend; brightness in harmonics, loudness in dB; "
+    lines = [f"evenness across the scale (deviation from the trend; brightness in harmonics, loudness in phon; "
              f"{' / '.join(b.dynamics)}):"]
     for key in keys:
         i = int(np.flatnonzero(b.keys == key)[0])
         row = f"  {key_name(key):>4} ({key:3d})  brightness " + " ".join(f"{v:+.2f}" for v in b.deviation["brightness"][i])
-        row += "  loudness " + " ".join(f"{v:+.1f}" for v in b.deviation["loudness_db"][i])
+        row += "  loudness " + " ".join(f"{v:+.1f}" for v in b.deviation["loudness_phon"][i])
         if a is not None:
             row += "  -> after: " + " ".join(f"{v:+.2f}" for v in a.deviation["brightness"][i])
-            row += " / " + " ".join(f"{v:+.1f}" for v in a.deviation["loudness_db"][i])
+            row += " / " + " ".join(f"{v:+.1f}" for v in a.deviation["loudness_phon"][i])
         lines.append(row)
     if not keys:
         lines.append("  no outlier hammer")
@@ -217,12 +217,12 @@ def write_report(c: Comparison, path: str | Path, *, dynamic: str = "mf") -> Pat
     except VoicerError as exc:  # no matplotlib: the report without its plots
         figs, notes = [], [f"(No plots in this report: {exc}.)"]
     flagged = set(b.flagged_keys())
-    columns = ["key", "loudness (dB)", "deviation"] + (["after", "deviation after"] if a else []) \
+    columns = ["key", "loudness (phon)", "deviation"] + (["after", "deviation after"] if a else []) \
         + ["brightness", "deviation"] + (["after", "deviation after"] if a else [])
     rows = []
     for i, key in enumerate(b.keys):
         row: list[Any] = [f"{key_name(int(key))} ({int(key)})"]
-        for m in ("loudness_db", "brightness"):
+        for m in ("loudness_phon", "brightness"):
             row += [float(b.values[m][i, j]), float(b.deviation[m][i, j])]
             if a is not None:
                 row += [float(a.values[m][i, j]), float(a.deviation[m][i, j])]

@@ -5,11 +5,16 @@ Metrics (:data:`METRIC_INFO`), per key and dynamic, from the predicted blow at t
 speed of the dynamic's MIDI velocity (the preset's velocity map is per instrument, so
 every key gets the same speed):
 
-- ``loudness_db``: the partials' power sum weighted by the A-weighting curve of
-  IEC 61672-1:2013, in dB re 1 N of bridge force, at the onset. Peak amplitudes, as
-  ``voicer inspect`` gives them: a lone partial at 1 kHz reads its own level (the rms
-  level is 3.01 dB lower for every key alike). The onset, not an energy over the first
-  part of the note, because voicing acts on the blow, not on the decay: the felt sets the
+- ``loudness_phon``: the loudness level, in phon, of the partials at the onset as a
+  listener in the room hears them: Zwicker's method of ISO 532-1:2017 for stationary
+  sounds (:mod:`voicer.report.loudness`), diffuse field, at the one listening level of
+  :data:`~voicer.report.loudness.LISTENING_SPL_DB` for every preset. Not a weighted sum
+  of the partials' power: that is set by the first few partials, which the hammer's
+  momentum rules at ff, so it hardly hears a felt that rounds off the upper partials;
+  a listener does, since partials in separate critical bands add up in loudness
+  (needling the demo's C4 by 20 % at the shoulders: -0.11 dB of partial power at ff,
+  -0.16 at pp; -0.59 and -0.32 phon). The onset, not an energy over the first part
+  of the note, because voicing acts on the blow, not on the decay: the felt sets the
   partials' amplitudes and leaves their decay rates alone, and the decay has its own
   metric (``sustain_s``), so a key with unusual losses does not pass for a loudness
   outlier that no needle could mend.
@@ -53,7 +58,6 @@ __all__ = [
     "SPAN_KEYS",
     "ROBUST_ITERATIONS",
     "Evenness",
-    "a_weighting_db",
     "construction_breaks",
     "spectral_metrics",
     "trend",
@@ -72,18 +76,19 @@ from ..physics.strings import t60_s
 from ..tone.preset import Preset
 from ..tone.tables import ModalTables, TableSettings, simulate_blows
 from ..tone.velocity import DYNAMIC_VELOCITY, hammer_speed
+from .loudness import LISTENING_SPL_DB, partials_loudness_phon
 from .spectrum import spectral_centroid_hz
 
 #: MIDI velocity of each dynamic measured (the fit's readings of the markings).
 DYNAMICS: dict[str, int] = {name: DYNAMIC_VELOCITY[name] for name in ("pp", "mf", "ff")}
 
 #: The metrics, in the order of :data:`METRIC_INFO`.
-METRICS: tuple[str, ...] = ("loudness_db", "brightness", "high_partials_db", "attack_ms", "sustain_s")
+METRICS: tuple[str, ...] = ("loudness_phon", "brightness", "high_partials_db", "attack_ms", "sustain_s")
 
 #: Unit and meaning of each metric (for reports and the README).
 METRIC_INFO: dict[str, tuple[str, str]] = {
-    "loudness_db": ("dB re 1 N", "A-weighted level of the bridge force at the onset "
-                                 "(IEC 61672-1 A-weighting, power sum over the partials)"),
+    "loudness_phon": ("phon", "loudness level of the partials at the onset (ISO 532-1 Zwicker, diffuse field, "
+                              f"{LISTENING_SPL_DB:g} dB SPL per newton of bridge force)"),
     "brightness": ("harmonics", "spectral centroid of the partials (power-weighted) over the first partial's "
                                 "frequency"),
     "high_partials_db": ("dB", "power of partials 5-10 relative to partials 1-4"),
@@ -93,12 +98,13 @@ METRIC_INFO: dict[str, tuple[str, str]] = {
 }
 
 #: The metrics a voicing job evens out: :meth:`Evenness.flagged_keys` looks at these.
-VOICING_METRICS: tuple[str, ...] = ("loudness_db", "brightness")
+VOICING_METRICS: tuple[str, ...] = ("loudness_phon", "brightness")
 
 #: Smallest deviation worth a flag, per metric: (size, relative). Relative sizes are
 #: fractions of the trend, for metrics that span a decade or more over the compass.
-#: Loudness: a just-noticeable level step is about 1 dB (from memory); 1.5 dB between
-#: neighbours is clearly heard; the same for the partials' balance. Brightness: 5 % of
+#: Loudness: a just-noticeable level step is about 1 dB (from memory), about 1 phon at
+#: these levels; 1.5 phon between neighbours is clearly heard; the partials' balance
+#: alike, in dB. Brightness: 5 % of
 #: the centroid (listeners tell centroid steps of a few per cent apart, from memory): it
 #: is some 1.05 harmonics at the top and 6-10 in the low bass, so a fixed size in
 #: harmonics would be a large change in the treble and a slight one in the bass (doubling
@@ -106,7 +112,7 @@ VOICING_METRICS: tuple[str, ...] = ("loudness_db", "brightness")
 #: and sustain: 10 %, a working choice (the JND of a reverberation time is about 5 %,
 #: from memory; a piano's decay is harder to judge).
 FLAG_FLOORS: dict[str, tuple[float, bool]] = {
-    "loudness_db": (1.5, False),
+    "loudness_phon": (1.5, False),
     "brightness": (0.05, True),
     "high_partials_db": (1.5, False),
     "attack_ms": (0.10, True),
@@ -139,24 +145,6 @@ ROBUST_ITERATIONS = 2
 
 _MAD_SD = 1.4826  # standard deviation / MAD of a normal distribution
 _LOW, _HIGH = slice(0, 4), slice(4, 10)  # partials 1-4 and 5-10
-
-
-def a_weighting_db(freq_hz: ArrayLike) -> NDArray[np.float64]:
-    """A-weighting in dB, IEC 61672-1:2013 (Annex E, analytical form).
-
-    ``A(f) = 20 log10(f4^2 f^4 / ((f^2 + f1^2) sqrt((f^2 + f2^2)(f^2 + f3^2)) (f^2 + f4^2)))
-    - A1000`` with f1 = 20.6 Hz, f2 = 107.7 Hz, f3 = 737.9 Hz, f4 = 12194 Hz and
-    A1000 = -2.000 dB, so that A(1 kHz) = 0.
-
-    Parameters
-    ----------
-    freq_hz : array_like of float > 0
-    """
-    f2 = np.asarray(freq_hz, dtype=float) ** 2
-    if np.any(~(f2 > 0)):
-        raise ParameterError(f"frequencies {freq_hz} Hz must be > 0")
-    ratio = 12194.0**2 * f2**2 / ((f2 + 20.6**2) * np.sqrt((f2 + 107.7**2) * (f2 + 737.9**2)) * (f2 + 12194.0**2))
-    return 20.0 * np.log10(ratio) + 2.0
 
 
 def construction_breaks(preset: Preset) -> tuple[int, ...]:
@@ -383,12 +371,12 @@ def spectral_metrics(freq_hz: NDArray[np.float64], sigma_per_s: NDArray[np.float
     (``amplitude_n`` is (speeds, partials), summed over the unison)."""
     power = np.abs(amplitude_n) ** 2
     count = len(freq_hz)
+    loudness = partials_loudness_phon(freq_hz, amplitude_n)
     with np.errstate(divide="ignore"):
-        loudness = 10.0 * np.log10(power @ 10.0 ** (a_weighting_db(freq_hz) / 10.0))
         high = (10.0 * np.log10(power[:, _HIGH].sum(axis=1) / power[:, _LOW].sum(axis=1)) if count > 4
                 else np.full(len(power), np.nan))
     brightness = np.array([spectral_centroid_hz(freq_hz, a) for a in amplitude_n]) / freq_hz[0]
-    return {"loudness_db": loudness, "brightness": brightness, "high_partials_db": high,
+    return {"loudness_phon": loudness, "brightness": brightness, "high_partials_db": high,
             "sustain_s": np.full(len(power), float(t60_s(sigma_per_s[0])))}
 
 

@@ -94,7 +94,7 @@ def suggest(preset: Preset, *, keys: Iterable[int] = range(21, 109), evenness: E
             size, relative = FLAG_FLOORS[m]
             scale[m] = np.abs(trend[m]) * size if relative else np.full_like(trend[m], size)
         bright = float(np.nanmean(before["brightness"] / scale["brightness"]))
-        loud = float(np.nanmean(before["loudness_db"] / scale["loudness_db"]))
+        loud = float(np.nanmean(before["loudness_phon"] / scale["loudness_phon"]))
         soften = bright > 0 if abs(bright) >= abs(loud) else loud > 0
         op = "needle" if soften else "harden"
         top = _MAX_PERCENT[op]
@@ -135,7 +135,7 @@ def plan_toml(s: Suggestion, *, name: str = "suggested: outlier hammers back to 
     dyn = s.evenness.dynamics
 
     def devs(d: dict[str, np.ndarray]) -> str:
-        return ", ".join(f"{n} {d['brightness'][j]:+.2f} / {d['loudness_db'][j]:+.1f} dB" for j, n in enumerate(dyn))
+        return ", ".join(f"{n} {d['brightness'][j]:+.2f} / {d['loudness_phon'][j]:+.1f} phon" for j, n in enumerate(dyn))
 
     lines = [
         "# Suggested by voicer from the predicted evenness of the scale: the felt operation that",

@@ -46,13 +46,23 @@ What each maps to, on each listed key (values as the preset resolves them):
   line through the two new points in log F against log c:
   ``p' = p + ln(g_l / g_s) / ln(c_l / c_s)`` and ``F1' = g_s F1 (c_s / 1 mm)^(p - p')``.
   With ``g = 1 - amount`` for needling and ``1 + amount`` for hardening, (g_s, g_l) is
-  (g, g^s) at the crown, (g^s, g) at the shoulders and (g, g) throughout (F1 times g, p
-  unchanged), with the spill s = :data:`SPILL` = 1/2: the crown's felt also takes the
-  start of every loud blow and the shoulders still back a soft one. With s = 1/4 needling
-  at the crown raised the demo's ff brightness by 1-2 % in the bass and middle (the
-  steeper law sharpens the ff pulse), which no technician expects of needling; with 1/2
-  every dynamic darkens, pp most. c_s and c_l (:data:`COMPRESSION_ANCHORS_MM`, log-linear
-  in the key between the anchors) were measured on the demo instrument: the largest
+  (g, g^s_c) at the crown, (g^s_s, g) at the shoulders and (g, g) throughout (F1 times g,
+  p unchanged), with the spills of :data:`SPILL`, s_c = 1/2 and s_s = 1/5: the crown's
+  felt takes the start of every loud blow, while a soft blow never reaches the
+  shoulders' compression and only rests on them, so less of a shoulder change reaches
+  pp. Both were set on the demo against the trade's rule (common practice) that needling
+  darkens and quietens every dynamic, the one it aims at most: with s_c = 1/4 needling at
+  the crown raised the ff brightness by 1-2 % in the bass and middle (the steeper law
+  sharpens the ff pulse); with 1/2 every dynamic darkens, pp most. With s_s = 1/2,
+  needling 20 % at the shoulders made E5 as much quieter at pp as at ff (-0.68 phon at
+  both: the line through the two points turns at c_s too); with 1/4, hardening there
+  made it louder by +0.51 phon at pp, +0.50 at ff; with 1/5, +0.49 and +0.51 (C4: +0.29
+  and +0.42); with 1/8 needling at the shoulders no longer darkened E5 at pp. A
+  power law has two parameters and cannot change the felt at one depth alone: around
+  D5-E5, where a pp blow gives nearly one partial, the shoulder operations move pp and
+  ff loudness within 0.02 phon of each other (their brightness still mostly at ff).
+  c_s and c_l (:data:`COMPRESSION_ANCHORS_MM`, log-linear in the key between the
+  anchors) were measured on the demo instrument: the largest
   total felt force of blows at 1 and 5 m/s (``simulate_blows``), as compression
   ``(F / F1)^(1/p)``: 0.78 and 1.98 mm at A0, 0.64 / 1.55 mm at E1 and 0.70 / 1.73 mm at
   F1 (where pairs of strings begin: a pair yields less to the hammer than one string),
@@ -145,7 +155,7 @@ from .preset import Preset, parse_preset
 FORMATS = (1, 2)
 #: How much of a crown or shoulder change reaches the other compression, as a power of
 #: the factor (see the module notes).
-SPILL = 0.5
+SPILL: dict[str, float] = {"crown": 0.5, "shoulders": 0.2}
 #: (key, c_s, c_l): peak felt compression in mm of blows at 1 and 5 m/s on the demo
 #: instrument (simulated, see the module notes); log-linear in the key between them.
 COMPRESSION_ANCHORS_MM: tuple[tuple[int, float, float], ...] = (
@@ -184,7 +194,8 @@ _WHERE = Param("where", "str", "", "crown (mostly soft playing), shoulders (most
 OPERATIONS: tuple[OperationSpec, ...] = (
     OperationSpec("needle", "soften the felt by needling", (_amount_percent("less"), _WHERE),
                   "`felt_force_1mm_n`, `felt_exponent`: the felt's forces at the compressions of a pp and an ff "
-                  f"blow (c_s, c_l) times (g_s, g_l) = (g, g^{SPILL:g}) at the crown, (g^{SPILL:g}, g) at the "
+                  f"blow (c_s, c_l) times (g_s, g_l) = (g, g^{SPILL['crown']:g}) at the crown, "
+                  f"(g^{SPILL['shoulders']:g}, g) at the "
                   "shoulders, (g, g) throughout, with g = 1 - amount_percent/100; then "
                   "p' = p + ln(g_l/g_s) / ln(c_l/c_s), F1' = g_s F1 (c_s / 1 mm)^(p - p')"),
     OperationSpec("harden", "stiffen the felt with hardener", (_amount_percent("more"), _WHERE),
@@ -320,7 +331,7 @@ def felt_law_change(force_1mm_n: float, exponent: float, g_small: float, g_large
 
 def _felt_factors(op: str, amount_percent: float, where: str) -> tuple[float, float]:
     g = 1.0 - amount_percent / 100.0 if op == "needle" else 1.0 + amount_percent / 100.0
-    return {"crown": (g, g**SPILL), "shoulders": (g**SPILL, g), "throughout": (g, g)}[where]
+    return {"crown": (g, g ** SPILL["crown"]), "shoulders": (g ** SPILL["shoulders"], g), "throughout": (g, g)}[where]
 
 
 # --- reading ----------------------------------------------------------------------------
