@@ -67,11 +67,18 @@ def comparison_json(c: Comparison) -> dict[str, Any]:
                 row[f"deviation_{label}"] = {m: _num(ev.deviation[m][i, j]) for m in METRICS}
                 row[f"flagged_{label}"] = [m for m in METRICS if bool(ev.flagged[m][i, j])]
             rows.append(row)
-    summary: dict[str, Any] = {}
+    # Over all keys, and over the outlier hammers alone: the compass-wide figure also
+    # holds what no voicing mends (the top octaves' single-dynamic dips, 1.7 phon rms on
+    # the demo), which can hide a plan that evens its keys.
+    outliers = b.flagged_keys()
+    summary: dict[str, Any] = {"outlier_keys": outliers}
     for metric, name in SUMMARY:
-        summary[f"{name}_rms_dev_before"] = _num(b.rms_deviation(metric))
-        if a is not None:
-            summary[f"{name}_rms_dev_after"] = _num(a.rms_deviation(metric))
+        for label, ev in (("before", b), ("after", a)):
+            if ev is None:
+                continue
+            summary[f"{name}_rms_dev_{label}"] = _num(ev.rms_deviation(metric))
+            summary[f"{name}_rms_dev_outliers_{label}"] = _num(ev.rms_deviation(metric, keys=outliers)) if outliers \
+                else None
     out: dict[str, Any] = {
         "preset": c.preset.source or c.preset.instrument["name"], "voicing": c.plan_name,
         "dynamics": list(b.dynamics), "metrics": {m: {"unit": METRIC_INFO[m][0], "meaning": METRIC_INFO[m][1]}
