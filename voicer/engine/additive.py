@@ -47,6 +47,7 @@ from ..tone.measured import MeasuredKey
 from ..tone.params import ENGINE_ONLY_FIELDS
 from ..tone.preset import Preset
 from ..tone.tables import KeyTable, ModalTables, TableSettings, build_tables
+from ..tone.unison import couple_tables, couple_unison
 
 #: Largest change, in dB either way, that a voicing applies to a measured partial.
 VOICING_GAIN_LIMIT_DB = 20.0
@@ -157,12 +158,13 @@ class AdditiveModel:
         physical = build_tables(preset, settings=settings, progress=progress)
         measured = {k: m for k, m in preset.measured.items() if k in physical.keys}
         if not measured:
-            return physical
+            return couple_tables(physical)
         reference = preset.fit_reference
         # Keys whose values the plan left alone are their own reference.
         changed = [k for k in measured if not _same_key_values(preset, reference, k)]
         refs = build_tables(reference, settings=settings, keys=changed, progress=progress) if changed else None
-        keys = dict(physical.keys)
+        # A recording holds its unison's double decay already; the other keys get it from the model.
+        keys = {k: t if k in measured else couple_unison(t, preset) for k, t in physical.keys.items()}
         for k, m in measured.items():
             ref = refs[k] if refs is not None and k in changed else physical[k]
             keys[k] = additive_table(m, physical[k], ref, sample_rate_hz=settings.sample_rate_hz)

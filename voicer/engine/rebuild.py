@@ -44,6 +44,7 @@ from numpy.typing import NDArray
 from ..errors import VoicerError
 from ..tone.preset import Preset, parse_preset
 from ..tone.tables import KeyTable, TableSettings, build_tables
+from ..tone.unison import couple_unison
 from .instrument import Instrument, KeyData
 from .knob_state import KnobState, with_values
 from .renderer import Renderer
@@ -72,7 +73,8 @@ def build_key_tables(base: Preset, values: Mapping[int, Mapping[str, float]], *,
 
     preset = with_values(base, values)
     keys = sorted(values)
-    tables = dict(build_tables(preset, settings=settings, keys=keys, use_cache=False).keys)
+    raw = build_tables(preset, settings=settings, keys=keys, use_cache=False).keys
+    tables = {k: couple_unison(t, preset) for k, t in raw.items()}
     if model == "additive":
         measured = [k for k in keys if k in preset.measured]
         refs = references if references is not None else {}
@@ -80,7 +82,7 @@ def build_key_tables(base: Preset, values: Mapping[int, Mapping[str, float]], *,
         if missing:
             refs.update(build_tables(preset.fit_reference, settings=settings, keys=missing, use_cache=False).keys)
         for k in measured:
-            tables[k] = additive_table(preset.measured[k], tables[k], refs[k], sample_rate_hz=settings.sample_rate_hz)
+            tables[k] = additive_table(preset.measured[k], raw[k], refs[k], sample_rate_hz=settings.sample_rate_hz)
     return tables
 
 

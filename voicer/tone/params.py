@@ -152,6 +152,22 @@ KEY_PARAMS: tuple[Param, ...] = (
           lo=-2.0, hi=2.0, default=0.0),
     Param("mating_2_mm", "float", "mm", "the same for string 2", lo=-2.0, hi=2.0, default=0.0),
     Param("mating_3_mm", "float", "mm", "the same for string 3 (treble side)", lo=-2.0, hi=2.0, default=0.0),
+    Param("mistune_1_cents", "float", "cents", "string 1's tuning against the key's pitch (all its partials)",
+          lo=-50.0, hi=50.0, default=0.0),
+    Param("mistune_2_cents", "float", "cents", "the same for string 2", lo=-50.0, hi=50.0, default=0.0),
+    Param("mistune_3_cents", "float", "cents", "the same for string 3", lo=-50.0, hi=50.0, default=0.0),
+    Param("bridge_loss_fraction", "float", "",
+          "part of a single string's decay rate that goes into the bridge and couples the unison's strings "
+          "(Weinreich 1977; 0: uncoupled)", lo=0.0, hi=1.0, hi_open=True, default=0.0),
+    Param("bridge_reactance_ratio", "float", "", "reactive over resistive part of the bridge's coupling",
+          lo=-10.0, hi=10.0, default=0.0),
+    Param("polarization_split_cents", "float", "cents",
+          "tuning of the strings' horizontal motion against their vertical ([instrument] polarizations = 2)",
+          lo=-20.0, hi=20.0, default=0.0),
+    Param("horizontal_coupling", "float", "", "the bridge's coupling of the horizontal motion, as a fraction of "
+          "the vertical's", lo=0.0, hi=1.0, default=0.1),
+    Param("polarization_coupling", "float", "", "the bridge's coupling between vertical and horizontal motion, "
+          "as a fraction of the vertical's (its square at most horizontal_coupling)", lo=0.0, hi=1.0, default=0.1),
     Param("damper_rate_per_s", "float", "1/s", "decay rate a damper adds to every partial of the key",
           lo=0.0, hi=500.0, default=20.0),
     Param("loss_b1_per_s", "float", "1/s", "frequency-independent decay rate b1 (sigma = b1 + b3 omega^2)",
@@ -161,7 +177,9 @@ KEY_PARAMS: tuple[Param, ...] = (
 )
 
 #: Fields the engine reads but the modal tables do not depend on (left out of their cache key).
-ENGINE_ONLY_FIELDS = frozenset({"damper_rate_per_s"})
+ENGINE_ONLY_FIELDS = frozenset({"damper_rate_per_s", "mistune_1_cents", "mistune_2_cents", "mistune_3_cents",
+                                "bridge_loss_fraction", "bridge_reactance_ratio", "polarization_split_cents",
+                                "horizontal_coupling", "polarization_coupling"})
 
 #: The two ways of giving a string's winding; at most one per preset.
 WINDING_FIELDS = ("winding_diameter_mm", "winding_mass_g_per_m")
@@ -193,6 +211,8 @@ INSTRUMENT_PARAMS: tuple[Param, ...] = (
     Param("una_corda_tilt_db_per_octave", "float", "dB/octave",
           "spectral tilt of a blow with the una corda pedal down (negative: darker), per octave above f1",
           lo=-12.0, hi=3.0, default=-1.5),
+    Param("polarizations", "int", "", "string motions modelled at the bridge: 1 (vertical) or 2 (and horizontal)",
+          lo=1, hi=2, default=1),
     Param("last_wound_key", "int", "", f"highest key with wound strings ({LOWEST_KEY - 1} = none)",
           lo=LOWEST_KEY - 1, hi=HIGHEST_KEY, default=LOWEST_KEY - 1),
 )
