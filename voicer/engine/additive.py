@@ -157,8 +157,10 @@ class AdditiveModel:
         """Tables for every key (the physical ones through the table cache)."""
         physical = build_tables(preset, settings=settings, progress=progress)
         measured = {k: m for k, m in preset.measured.items() if k in physical.keys}
+        una = build_tables(preset, settings=settings, progress=progress, una_corda=True,
+                           keys=[k for k in physical.keys if k not in measured])
         if not measured:
-            return couple_tables(physical)
+            return couple_tables(physical, una)
         reference = preset.fit_reference
         # Keys whose values the plan left alone are their own reference.
         changed = [k for k in measured if not _same_key_values(preset, reference, k)]
@@ -169,5 +171,8 @@ class AdditiveModel:
             ref = refs[k] if refs is not None and k in changed else physical[k]
             keys[k] = additive_table(m, physical[k], ref, sample_rate_hz=settings.sample_rate_hz)
         computed = sorted(set(physical.computed) | set(refs.computed if refs is not None else ()))
+        # A recorded key has no una corda blow of its own: the engine shapes its spectrum
+        # by the instrument's una corda level and tilt.
         return ModalTables(preset=preset, settings=settings, keys=keys, computed=tuple(computed),
-                           cached=tuple(k for k in physical.keys if k not in computed))
+                           cached=tuple(k for k in physical.keys if k not in computed),
+                           una_corda={k: couple_unison(t, preset) for k, t in una.keys.items()})

@@ -7,8 +7,10 @@ From a preset's modal tables this precomputes, per key,
   and for a short fade (voice stealing, all sound off),
 * the partial amplitudes at every MIDI velocity 1..127 (interpolated between the
   velocity layers through the preset's velocity map),
-* the una corda gain of each partial (a preset-defined spectral change for now:
-  ``una_corda_level_db`` plus ``una_corda_tilt_db_per_octave`` above the first partial),
+* the amplitudes of the una corda blow (the hammer shifted: fewer strings struck, with
+  softer felt) where the model gives its tables; for a key played from a recording, a
+  spectral change instead (``una_corda_level_db`` plus ``una_corda_tilt_db_per_octave``
+  above the first partial),
 
 so that note-on, note-off and pedal changes only copy rows. The amplitudes are the
 strings' bridge force in newtons, summed over the unison.
@@ -43,7 +45,8 @@ class KeyData:
     damped: bool
     levels: tuple[PartialTables, ...]  # damper engagement 0..DAMPER_LEVELS, then the fade
     amplitude: NDArray[np.complex128]  # (128, n): row v is MIDI velocity v (row 0 unused)
-    una_corda_gain: NDArray[np.float64]  # (n,)
+    una_corda_gain: NDArray[np.float64]  # (n,): the spectral change, where there is no una corda blow
+    una_corda_amplitude: NDArray[np.complex128] | None = None  # (128, n): the una corda blow
 
     @property
     def fade(self) -> PartialTables:
@@ -77,16 +80,21 @@ class Instrument:
         self.last_damped_key = int(inst["last_damped_key"])
         self.half_pedal = (int(inst["half_pedal_low_cc"]), int(inst["half_pedal_high_cc"]))
         self._speeds = hammer_speed(np.arange(1, 128), inst)
-        self.keys: dict[int, KeyData] = {key: self.key_data(table) for key, table in tables.keys.items()}
+        una = tables.una_corda or {}
+        self.keys: dict[int, KeyData] = {key: self.key_data(table, una=una.get(key))
+                                          for key, table in tables.keys.items()}
         self.max_partials = max(len(k.freq_hz) for k in self.keys.values())
 
-    def key_data(self, table: KeyTable, *, like: KeyData | None = None) -> KeyData:
-        """One key's data from its table (allocates: off the audio thread).
+    def key_data(self, table: KeyTable, *, una: KeyTable | None = None, like: KeyData | None = None) -> KeyData:
+        """One key's data from its table and that of its una corda blow (allocates: off
+        the audio thread).
 
         With ``like``, a key of this state whose partials have the same frequencies and
         decay rates (a change of the hammer only: felt, mass, strike point), its damper
         and fade tables are shared instead of recomputed; a voice already sounding on
-        ``like`` then keeps exactly its partials when a damper falls on it.
+        ``like`` then keeps exactly its partials when a damper falls on it. Without ``una``
+        (a live rebuild of the normal blow only), ``like``'s una corda blow is scaled by
+        the change of the normal one, entry by entry (within 20 dB).
         """
         key = table.key
         inst = self.preset.instrument
@@ -107,9 +115,17 @@ class Instrument:
         amp = np.zeros((128, len(table.freq_hz)), dtype=np.complex128)
         amp[1:] = table.at_speeds(self._speeds)
         octaves = np.log2(table.freq_hz / table.freq_hz[0])
-        una = 10.0 ** ((inst["una_corda_level_db"] + inst["una_corda_tilt_db_per_octave"] * octaves) / 20.0)
+        gain = 10.0 ** ((inst["una_corda_level_db"] + inst["una_corda_tilt_db_per_octave"] * octaves) / 20.0)
+        una_amp = None
+        if una is not None and len(una.freq_hz) == len(table.freq_hz):
+            una_amp = np.zeros_like(amp)
+            una_amp[1:] = una.at_speeds(self._speeds)
+        elif like is not None and like.una_corda_amplitude is not None and like.amplitude.shape == amp.shape:
+            with np.errstate(divide="ignore", invalid="ignore"):
+                ratio = np.where(np.abs(like.amplitude) > 0, np.abs(amp) / np.abs(like.amplitude), 1.0)
+            una_amp = like.una_corda_amplitude * np.clip(ratio, 0.1, 10.0)
         return KeyData(key=key, freq_hz=table.freq_hz, damped=key <= self.last_damped_key, levels=levels,
-                       amplitude=amp, una_corda_gain=una)
+                       amplitude=amp, una_corda_gain=gain, una_corda_amplitude=una_amp)
 
     def damper_level(self, sustain_cc: int) -> int:
         """Damper engagement level of a released key at a sustain-pedal value (0..127)."""

@@ -16,5 +16,7 @@ class PhysicalModel:
     name = "physical"
 
     def build(self, preset: Preset, *, settings: TableSettings, progress: bool = False) -> ModalTables:
-        """Tables for every key, from the cache where the inputs are unchanged."""
-        return couple_tables(build_tables(preset, settings=settings, progress=progress))
+        """Tables for every key (and of its una corda blow), from the cache where the
+        inputs are unchanged."""
+        return couple_tables(build_tables(preset, settings=settings, progress=progress),
+                             build_tables(preset, settings=settings, progress=progress, una_corda=True))

@@ -9,7 +9,8 @@ vibrating (superposition; nothing is cut). Every voice of a key shares the key's
 * otherwise the damper engagement follows the sustain pedal (CC 64), with half-pedal
   values between ``half_pedal_low_cc`` and ``half_pedal_high_cc`` damping in part
   (quantised to :data:`~voicer.engine.instrument.DAMPER_LEVELS` steps);
-* the una corda pedal (CC 67) changes the spectrum of the strikes made while it is down.
+* the una corda pedal (CC 67) shifts the hammers for the strikes made while it is down
+  (their una corda blow: fewer strings, softer felt).
 
 Above the voice limit a voice is stolen, released voices first (the longest released),
 then the quietest, and faded out over a few milliseconds instead of cut. All work is
@@ -89,7 +90,9 @@ class Voices:
             if not self._drop_fading(at) and not self._steal(hard=True, at=at):
                 return  # nothing left to make room with (cannot happen with a sane capacity)
         amp = self._amp[:n]
-        if self.una_corda:
+        if self.una_corda and data.una_corda_amplitude is not None:
+            amp[:] = data.una_corda_amplitude[min(velocity, 127)]
+        elif self.una_corda:
             np.multiply(data.amplitude[min(velocity, 127)], data.una_corda_gain, out=amp)
         else:
             amp[:] = data.amplitude[min(velocity, 127)]

@@ -152,6 +152,9 @@ KEY_PARAMS: tuple[Param, ...] = (
           lo=-2.0, hi=2.0, default=0.0),
     Param("mating_2_mm", "float", "mm", "the same for string 2", lo=-2.0, hi=2.0, default=0.0),
     Param("mating_3_mm", "float", "mm", "the same for string 3 (treble side)", lo=-2.0, hi=2.0, default=0.0),
+    Param("una_corda_felt_factor", "float", "",
+          "stiffness of the felt the shifted hammer strikes with under the una corda, as a factor (the less "
+          "compacted felt beside the string grooves)", lo=0.2, hi=1.0, default=0.8),
     Param("mistune_1_cents", "float", "cents", "string 1's tuning against the key's pitch (all its partials)",
           lo=-50.0, hi=50.0, default=0.0),
     Param("mistune_2_cents", "float", "cents", "the same for string 2", lo=-50.0, hi=50.0, default=0.0),
@@ -177,8 +180,8 @@ KEY_PARAMS: tuple[Param, ...] = (
 )
 
 #: Fields the engine reads but the modal tables do not depend on (left out of their cache key).
-ENGINE_ONLY_FIELDS = frozenset({"damper_rate_per_s", "mistune_1_cents", "mistune_2_cents", "mistune_3_cents",
-                                "bridge_loss_fraction", "bridge_reactance_ratio", "polarization_split_cents",
+ENGINE_ONLY_FIELDS = frozenset({"damper_rate_per_s", "una_corda_felt_factor", "mistune_1_cents", "mistune_2_cents",
+                                "mistune_3_cents", "bridge_loss_fraction", "bridge_reactance_ratio", "polarization_split_cents",
                                 "horizontal_coupling", "polarization_coupling"})
 
 #: The two ways of giving a string's winding; at most one per preset.
@@ -206,11 +209,14 @@ INSTRUMENT_PARAMS: tuple[Param, ...] = (
           lo=0, hi=126, default=30),
     Param("half_pedal_high_cc", "int", "", "sustain pedal value from which the dampers are clear of the strings",
           lo=1, hi=127, default=90),
-    Param("una_corda_level_db", "float", "dB", "level change of a blow with the una corda pedal down",
-          lo=-24.0, hi=0.0, default=-4.0),
+    Param("una_corda_missed_strings", "int", "",
+          "strings of each unison the hammer misses with the una corda pedal down (string 1, the bass side, "
+          "first; a key keeps one)", lo=0, hi=2, default=1),
+    Param("una_corda_level_db", "float", "dB", "level change of a una corda blow on a key played from a "
+          "recording (the model's keys strike fewer strings instead)", lo=-24.0, hi=0.0, default=-4.0),
     Param("una_corda_tilt_db_per_octave", "float", "dB/octave",
-          "spectral tilt of a blow with the una corda pedal down (negative: darker), per octave above f1",
-          lo=-12.0, hi=3.0, default=-1.5),
+          "spectral tilt of a una corda blow on a key played from a recording (negative: darker), per octave "
+          "above f1", lo=-12.0, hi=3.0, default=-1.5),
     Param("polarizations", "int", "", "string motions modelled at the bridge: 1 (vertical) or 2 (and horizontal)",
           lo=1, hi=2, default=1),
     Param("last_wound_key", "int", "", f"highest key with wound strings ({LOWEST_KEY - 1} = none)",

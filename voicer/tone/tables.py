@@ -156,6 +156,8 @@ class ModalTables:
     keys: dict[int, KeyTable]
     computed: tuple[int, ...]
     cached: tuple[int, ...]
+    #: The blows with the una corda pedal down, where the model gives them (same entries).
+    una_corda: dict[int, KeyTable] | None = None
 
     def __getitem__(self, key: int) -> KeyTable:
         try:
@@ -179,7 +181,7 @@ class Blows:
     dt_s: dict[int, NDArray[np.float64]]
 
 
-def _key_modes(preset: Preset, key: int, settings: TableSettings) -> dict[str, Any]:
+def _key_modes(preset: Preset, key: int, settings: TableSettings, una_corda: bool = False) -> dict[str, Any]:
     scale = preset.scale
     i = scale.index(key)
     v = scale.values
@@ -191,6 +193,11 @@ def _key_modes(preset: Preset, key: int, settings: TableSettings) -> dict[str, A
     b = float(scale.b[i])
     beta, width = float(v["strike_ratio"][i]), float(v["hammer_width_mm"][i]) * 1e-3 / length
     modal_mass = float(scale.linear_mass_kg_per_m[i]) * length / 2.0
+    strings = int(v["strings"][i])
+    # Under the una corda the shifted hammer misses the first strings (bass side) and
+    # meets the others with the less compacted felt beside its string grooves.
+    missed = min(int(preset.instrument["una_corda_missed_strings"]), strings - 1) if una_corda else 0
+    felt = float(v["felt_force_1mm_n"][i]) * (float(v["una_corda_felt_factor"][i]) if una_corda else 1.0)
     return {
         "band": band,
         "modes": modes,
@@ -198,18 +205,19 @@ def _key_modes(preset: Preset, key: int, settings: TableSettings) -> dict[str, A
         "residual": residual_compliance(b, modes.f0_hz, len(modes.n) + 1, beta, width, modal_mass, end=scale.end),
         "bridge": bridge_force_factors(b, modes.n, end=scale.end) * float(scale.tension_n[i]) / length,
         "modal_mass_kg": modal_mass,
-        "strings": int(v["strings"][i]),
+        "strings": strings,
+        "missed": missed,
         "offsets_m": [float(v[f"mating_{s}_mm"][i]) * 1e-3 for s in (1, 2, 3)],
         "hammer_kg": float(v["hammer_mass_g"][i]) * 1e-3,
         "felt_p": float(v["felt_exponent"][i]),
-        "felt_k": float(felt_k(v["felt_force_1mm_n"][i], v["felt_exponent"][i])),
+        "felt_k": float(felt_k(felt, v["felt_exponent"][i])),
         "hysteresis": float(v["felt_hysteresis"][i]) if preset.instrument["felt_law"] == "stulov" else 0.0,
         "relaxation_s": float(v["felt_relaxation_us"][i]) * 1e-6,
     }
 
 
 def simulate_blows(preset: Preset, keys: Iterable[int], speeds_m_s: Iterable[float], *,
-                   settings: TableSettings = TableSettings(), record: bool = False) -> Blows:
+                   settings: TableSettings = TableSettings(), record: bool = False, una_corda: bool = False) -> Blows:
     """Simulate every key at every hammer speed in one batch (no cache).
 
     Parameters
@@ -224,9 +232,14 @@ def simulate_blows(preset: Preset, keys: Iterable[int], speeds_m_s: Iterable[flo
         Sample rate, partial cap and time-step rules (its own layers are not used).
     record : bool
         Keep the felt force at every step (for plots).
+    una_corda : bool
+        The blow with the una corda pedal down: the hammer misses
+        ``una_corda_missed_strings`` of each unison (their amplitudes are zero; a key keeps
+        one string) and its felt is ``una_corda_felt_factor`` times as stiff.
     """
     keys = [int(k) for k in keys]
-    tables, forces, dts = _simulate([(preset, k) for k in keys], speeds_m_s, settings=settings, record=record)
+    tables, forces, dts = _simulate([(preset, k) for k in keys], speeds_m_s, settings=settings, record=record,
+                                    una_corda=una_corda)
     return Blows(tables=dict(zip(keys, tables)), force_n=dict(zip(keys, forces)) if record else None,
                  dt_s=dict(zip(keys, dts)))
 
@@ -239,9 +252,10 @@ def simulate_variants(items: Sequence[tuple[Preset, int]], speeds_m_s: Iterable[
 
 
 def _simulate(items: Sequence[tuple[Preset, int]], speeds_m_s: Iterable[float], *, settings: TableSettings,
-              record: bool) -> tuple[list[KeyTable], list[NDArray[np.float64]], list[NDArray[np.float64]]]:
+              record: bool, una_corda: bool = False
+              ) -> tuple[list[KeyTable], list[NDArray[np.float64]], list[NDArray[np.float64]]]:
     speeds = np.asarray(list(speeds_m_s), dtype=float)
-    info = [_key_modes(p, k, settings) for p, k in items]
+    info = [_key_modes(p, k, settings, una_corda) for p, k in items]
     n_max = max(len(d["modes"].n) for d in info)
     labels = []
     rows: dict[str, list[Any]] = {n: [] for n in ("hammer", "share", "offset", "omega", "sigma", "coupling", "mass",
@@ -259,8 +273,9 @@ def _simulate(items: Sequence[tuple[Preset, int]], speeds_m_s: Iterable[float], 
             for name, value in (("mass", d["hammer_kg"]), ("speed", speed), ("k", d["felt_k"]), ("p", d["felt_p"]),
                                 ("hyst", d["hysteresis"]), ("tau", d["relaxation_s"])):
                 cases[name].append(value)
-            for s in range(d["strings"]):
-                for name, value in (("hammer", h), ("share", 1.0 / d["strings"]), ("offset", d["offsets_m"][s]),
+            struck = d["strings"] - d["missed"]
+            for s in range(d["missed"], d["strings"]):
+                for name, value in (("hammer", h), ("share", 1.0 / struck), ("offset", d["offsets_m"][s]),
                                     ("omega", omega), ("sigma", sigma), ("coupling", coupling),
                                     ("mass", d["modal_mass_kg"]), ("residual", d["residual"])):
                     rows[name].append(value)
@@ -282,9 +297,9 @@ def _simulate(items: Sequence[tuple[Preset, int]], speeds_m_s: Iterable[float], 
         n, n_s = d["band"], d["strings"]
         h0 = item * len(speeds)
         first_row = row
-        amp = np.empty((len(speeds), n_s, n), dtype=complex)
+        amp = np.zeros((len(speeds), n_s, n), dtype=complex)  # a missed string stays at rest
         for j in range(len(speeds)):
-            for s in range(n_s):
+            for s in range(d["missed"], n_s):
                 amp[j, s] = 2.0 * d["bridge"][:n] * result.eta0[row, :n]
                 row += 1
         hs = slice(h0, h0 + len(speeds))
@@ -299,9 +314,9 @@ def _simulate(items: Sequence[tuple[Preset, int]], speeds_m_s: Iterable[float], 
     return tables, forces, dts
 
 
-def _key_digest(preset: Preset, key: int, settings: TableSettings) -> str:
+def _key_digest(preset: Preset, key: int, settings: TableSettings, una_corda: bool = False) -> str:
     i = preset.scale.index(key)
-    inputs = {
+    inputs: dict[str, Any] = {
         "model": TABLE_MODEL_VERSION,
         "key": key,
         "values": {name: float(values[i]) for name, values in preset.resolved.items()
@@ -309,6 +324,9 @@ def _key_digest(preset: Preset, key: int, settings: TableSettings) -> str:
         "instrument": {name: preset.instrument[name] for name in ("a4_hz", "end_condition", "felt_law")},
         "settings": asdict(settings),
     }
+    if una_corda:
+        inputs["una_corda"] = {"missed": int(preset.instrument["una_corda_missed_strings"]),
+                               "felt_factor": float(preset.resolved["una_corda_felt_factor"][i])}
     return digest(inputs)
 
 
@@ -328,7 +346,7 @@ def _batches(keys: list[int], modes: dict[int, int], strings: dict[int, int], la
 
 
 def build_tables(preset: Preset, *, settings: TableSettings = TableSettings(), keys: Iterable[int] | None = None,
-                 use_cache: bool = True, progress: bool = False) -> ModalTables:
+                 use_cache: bool = True, progress: bool = False, una_corda: bool = False) -> ModalTables:
     """Tables for the keys of a preset (all by default), read from the cache where possible.
 
     Parameters
@@ -343,10 +361,12 @@ def build_tables(preset: Preset, *, settings: TableSettings = TableSettings(), k
         Read and write the on-disk cache.
     progress : bool
         Show a progress bar on standard error.
+    una_corda : bool
+        Tables of the blow with the una corda pedal down (see :func:`simulate_blows`).
     """
     wanted = [int(k) for k in (keys if keys is not None else preset.scale.keys)]
     tables: dict[int, KeyTable] = {}
-    names = {k: _key_digest(preset, k, settings) for k in wanted}
+    names = {k: _key_digest(preset, k, settings, una_corda) for k in wanted}
     missing = []
     for k in wanted:
         entry = load_entry(names[k]) if use_cache else None
@@ -360,9 +380,10 @@ def build_tables(preset: Preset, *, settings: TableSettings = TableSettings(), k
                  + settings.extra_modes for k in missing}
         strings = {k: int(scale.value("strings", k)) for k in missing}
         speeds = settings.speeds()
-        with tqdm(total=len(missing), unit="key", desc="modal tables", disable=not progress, leave=False) as bar:
+        desc = "una corda tables" if una_corda else "modal tables"
+        with tqdm(total=len(missing), unit="key", desc=desc, disable=not progress, leave=False) as bar:
             for batch in _batches(missing, modes, strings, settings.layers):
-                done = simulate_blows(preset, batch, speeds, settings=settings).tables
+                done = simulate_blows(preset, batch, speeds, settings=settings, una_corda=una_corda).tables
                 for k, table in done.items():
                     tables[k] = table
                     if use_cache:

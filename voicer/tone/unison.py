@@ -105,8 +105,12 @@ def couple_unison(table: KeyTable, preset: Preset) -> KeyTable:
                     contacts=table.contacts)
 
 
-def couple_tables(tables: ModalTables) -> ModalTables:
-    """Every key of a preset's tables through :func:`couple_unison`."""
-    return ModalTables(preset=tables.preset, settings=tables.settings,
-                       keys={k: couple_unison(t, tables.preset) for k, t in tables.keys.items()},
-                       computed=tables.computed, cached=tables.cached)
+def couple_tables(tables: ModalTables, una_corda: ModalTables | None = None) -> ModalTables:
+    """Every key of a preset's tables through :func:`couple_unison`, with the una corda
+    blows' tables (of the same preset and keys) beside them."""
+    preset = tables.preset
+    una = ({k: couple_unison(t, preset) for k, t in una_corda.keys.items()} if una_corda is not None
+           else tables.una_corda)
+    return ModalTables(preset=preset, settings=tables.settings,
+                       keys={k: couple_unison(t, preset) for k, t in tables.keys.items()},
+                       computed=tables.computed, cached=tables.cached, una_corda=una)
