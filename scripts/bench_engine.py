@@ -34,7 +34,8 @@ from voicer.engine.live import LiveInput  # noqa: E402
 from voicer.engine.renderer import Renderer  # noqa: E402
 from voicer.resources import find_preset  # noqa: E402
 from voicer.tone.preset import load_preset  # noqa: E402
-from voicer.tone.tables import build_tables  # noqa: E402
+from voicer.engine.models import PhysicalModel  # noqa: E402
+from voicer.tone.tables import TableSettings  # noqa: E402
 
 FS = 48_000
 SECONDS = 2.0
@@ -114,7 +115,9 @@ def time_interleaved(renderer: Renderer, block: int) -> tuple[float, float, floa
 
 def main() -> None:
     preset = load_preset(find_preset("demo"))
-    tables = build_tables(preset)
+    # As `voicer play` builds them: unisons coupled at the bridge, the soundboard, the una
+    # corda blows, and (pedal down) the other keys' strings answering each strike.
+    tables = PhysicalModel().build(preset, settings=TableSettings(sample_rate_hz=float(FS)))
     print("renderer G/s and capacity: the renderer alone; kernel, matmul and ratios: the three timed in turn")
     print(f"{'block':>5} {'partials':>8} {'renderer G/s':>12} {'kernel G/s':>10} {'matmul G/s':>10} "
           f"{'rend/kern':>9} {'kern/matmul':>11} {'partials in half a core':>24}")

@@ -37,6 +37,7 @@ from voicer.errors import ParameterError, PresetError
 from voicer.io.atomic import backup_path
 from voicer.resources import presets_dir
 from voicer.tone.tables import build_tables
+from voicer.tone.unison import couple_tables
 from voicer.tone.voicing import apply_voicing, load_voicing
 
 pytestmark = pytest.mark.usefixtures("shared_cache")
@@ -274,7 +275,9 @@ def test_keyboard_knob_keys_send_the_mapped_controllers() -> None:
 
 @pytest.fixture(scope="module")
 def tables(demo, module_cache):
-    return build_tables(demo, settings=table_settings(FS), keys=KEYS)
+    # As a command plays them: heard through the unison's coupling and the soundboard,
+    # as the live rebuilds are.
+    return couple_tables(build_tables(demo, settings=table_settings(FS), keys=KEYS))
 
 
 def _renderer(tables) -> Renderer:
@@ -416,7 +419,7 @@ def test_a_swap_allocates_nothing_in_the_callback(demo, module_cache) -> None:
     """As tests/test_renderer.py checks the callback: with swaps queued, Renderer.process
     creates no array-sized temporaries (the traced peak grows by far less than one
     partial array), and the swapped-out data is not freed there."""
-    full = build_tables(demo, settings=table_settings(FS))
+    full = couple_tables(build_tables(demo, settings=table_settings(FS)))
     renderer = Renderer([Instrument(full, sample_rate=FS, max_block=BLOCK, split=DEFAULT_SPLIT)], gain_db=-20.0)
     inst = renderer.states[0]
     swapped = [40, 52, 60, 64, 76]

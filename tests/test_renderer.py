@@ -17,6 +17,7 @@ from voicer.engine.instrument import DAMPER_LEVELS, Instrument
 from voicer.engine.renderer import Renderer
 from voicer.io.sources import MidiFileSource
 from voicer.physics.tuning import cents
+from voicer.tone.preset import parse_preset
 from voicer.tone.tables import build_tables
 from voicer.tone.voicing import apply_voicing, load_voicing
 
@@ -38,19 +39,28 @@ def cc(control, value):
 
 
 @pytest.fixture(scope="module")
-def full_tables(demo):
-    return build_tables(demo, use_cache=False)
+def plain(demo):
+    """The demo without sympathetic resonance: these tests follow each key's own partials
+    through the dampers and pedals (the resonance: test_sympathy.py)."""
+    data = demo.to_dict()
+    data["instrument"]["sympathetic_coupling"] = 0.0
+    return parse_preset(data, source=demo.source)
 
 
 @pytest.fixture(scope="module")
-def tables(demo):
-    return build_tables(demo, keys=KEYS, use_cache=False)
+def full_tables(plain):
+    return build_tables(plain, use_cache=False)
 
 
 @pytest.fixture(scope="module")
-def tables_b(demo, demo_path):
+def tables(plain):
+    return build_tables(plain, keys=KEYS, use_cache=False)
+
+
+@pytest.fixture(scope="module")
+def tables_b(plain, demo_path):
     plan = load_voicing(demo_path.parent.parent / "voicings" / "kestrel-190-mellow.toml")
-    return build_tables(apply_voicing(demo, plan), keys=KEYS, use_cache=False)
+    return build_tables(apply_voicing(plain, plan), keys=KEYS, use_cache=False)
 
 
 def make(tables, *more, **kw):

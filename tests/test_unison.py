@@ -14,6 +14,7 @@ from voicer.engine.models import PhysicalModel
 from voicer.engine.renderer import Renderer
 from voicer.errors import ParameterError, PresetError
 from voicer.physics.unison import coupled_modes, heard_amplitudes, unison_matrix
+from voicer.tone.preset import parse_preset
 from voicer.tone.tables import TableSettings, build_tables
 from voicer.tone.unison import couple_tables, couple_unison, is_coupled
 
@@ -134,9 +135,20 @@ def test_modes_against_direct_integration_of_three_coupled_oscillators():
 
 # --- the heard tables ---------------------------------------------------------------------
 
+def uncoupled(demo):
+    """The demo with the defaults of the unison fields: no bridge loss, no mistuning."""
+    data = demo.to_dict()
+    for anchor in data["anchor"]:
+        for name in ("bridge_loss_fraction", "mistune_1_cents", "mistune_2_cents", "mistune_3_cents"):
+            anchor.pop(name, None)
+    data["instrument"]["body"] = "none"
+    return parse_preset(data, source="uncoupled")
+
+
 def test_uncoupled_keys_keep_their_sound(demo):
     # The defaults (no bridge loss, no mistuning, one polarization) leave every key as the
     # sum of its strings: one entry per partial, the same amplitudes.
+    demo = uncoupled(demo)
     raw = build_tables(demo, keys=[40, 60])
     heard = couple_tables(raw)
     for k in (40, 60):
@@ -225,7 +237,7 @@ def test_small_mistuning_gives_double_decay_and_the_knee_rises_with_it(demo):
     f1 = demo.scale.f0_hz[key - 21]
     found = []
     for cents in (0.5, 1.0):
-        p = demo.with_key_values(key, {"bridge_loss_fraction": 0.7, "mistune_3_cents": cents})
+        p = uncoupled(demo).with_key_values(key, {"bridge_loss_fraction": 0.7, "mistune_3_cents": cents})
         level = envelope_db(render_key(p, key, 12.0), f1)
         found.append(two_slopes(level - level[FS // 10], (0.3, 2.0), (9.0, 11.5)))
     sigma_db = 20 / np.log(10) * float(demo.scale.modes(key).sigma_per_s[0])  # one string alone, dB/s
@@ -240,7 +252,7 @@ def test_large_mistuning_beats_at_the_difference_frequency(demo):
     # frequencies and the partial's envelope beats at their difference. Measured from the
     # audio: the strongest line of the level's spectrum (scipy.signal.periodogram).
     key = 60
-    p = demo.with_key_values(key, {"bridge_loss_fraction": 0.2, "mistune_1_cents": -1.5, "mistune_2_cents": 1.5,
+    p = uncoupled(demo).with_key_values(key, {"bridge_loss_fraction": 0.2, "mistune_1_cents": -1.5, "mistune_2_cents": 1.5,
                                    "mistune_3_cents": 1.5})
     heard = couple_unison(build_tables(p, keys=[key])[key], p)
     strongest = np.argsort(np.abs(heard.amplitude_n[10, 0, :3]))[-2:]  # the in-phase pair 2-3 is silent
@@ -256,7 +268,7 @@ def test_large_mistuning_beats_at_the_difference_frequency(demo):
 
 
 def test_physical_model_plays_the_coupled_unison(demo):
-    p = demo.with_key_values(60, {"bridge_loss_fraction": 0.5, "mistune_2_cents": 0.4})
+    p = uncoupled(demo).with_key_values(60, {"bridge_loss_fraction": 0.5, "mistune_2_cents": 0.4})
     built = PhysicalModel().build(p, settings=TableSettings())
     assert len(built[60].freq_hz) == 3 * len(build_tables(p, keys=[60])[60].freq_hz)
     assert len(built[59].freq_hz) == len(build_tables(p, keys=[59])[59].freq_hz)

@@ -50,16 +50,27 @@ def _finite(x: float | None, digits: int | None = None) -> float | None:
     return float(x) if digits is None else round(float(x), digits)
 
 
+def _strike_json(note: NoteAnalysis, fit: KeyFit | None) -> dict[str, Any]:
+    """The strike ratio as the key's fit reads it (through the base preset's soundboard
+    where it describes one), else the note's own."""
+    if fit is not None and fit.strike_ratio is not None:
+        ratio, unc, quality = fit.strike_ratio, fit.strike_uncertainty, fit.strike_quality
+    elif note.strike is not None:
+        ratio, unc, quality = note.strike.ratio, note.strike.uncertainty, note.strike.quality
+    else:
+        return {"strike_ratio": None, "strike_ratio_uncertainty": None, "strike_quality": None}
+    # an uncertainty the fit could not bound (degenerate covariance) is infinite: null
+    return {"strike_ratio": round(ratio, 4), "strike_ratio_uncertainty": _finite(unc, 4),
+            "strike_quality": quality}
+
+
 def _note_json(note: NoteAnalysis, fit: KeyFit | None) -> dict[str, Any]:
     out: dict[str, Any] = {
         "file": note.path, "key": note.key, "name": key_name(note.key), "onset_s": round(note.onset_s, 4),
         "level_dbfs": round(note.level_db, 2), "f0_hz": round(note.first_partial_hz, 4),
         "cents_from_et": round(note.cents_from_et, 2),
         "b": _finite(note.b), "b_uncertainty": _finite(note.b_uncertainty),
-        "strike_ratio": None if note.strike is None else round(note.strike.ratio, 4),
-        # an uncertainty the fit could not bound (degenerate covariance) is infinite: null
-        "strike_ratio_uncertainty": None if note.strike is None else _finite(note.strike.uncertainty, 4),
-        "strike_quality": None if note.strike is None else note.strike.quality,
+        **_strike_json(note, fit),
         "partials": [{"n": p.n, "freq_hz": round(p.freq_hz, 4), "level_db": _finite(p.level_db, 2),
                       "level_uncertainty_db": _finite(p.level_uncertainty_db, 2),
                       "t60_s": _finite(p.t60_s, 3), "t60_uncertainty_s": _finite(p.t60_uncertainty_s, 3),

@@ -22,6 +22,7 @@ import numpy as np
 
 from .. import __version__
 from ..errors import PresetError
+from ..physics.body import BodyModel, body_modes, modal_sum
 from ..tone.measured import parse_measured_key
 from ..tone.preset import Preset
 from ..tone.tables import TableSettings
@@ -29,6 +30,7 @@ from ..tone.velocity import DYNAMIC_VELOCITY, hammer_speed  # markings in file n
 from .felt_fit import FeltFit, StrikeLevels, fit_felt
 from .losses import LossFit, fit_losses
 from .note import NoteAnalysis, RecordingAnalysis, has_level
+from .strike import fit_strike_ratio
 from .preset_out import KeyFit, fitted_preset
 
 #: T60 stored for an aftersound that did not decay measurably within the note: longer than
@@ -79,6 +81,14 @@ def _valid_partials(key: int, measured: dict[str, Any], remarks: list[str]) -> d
     return {k: ([v[j] for j in keep] if k in arrays else v) for k, v in measured.items()}
 
 
+def _body_db(base: Preset) -> Callable[[float], float] | None:
+    """The base preset's soundboard gain in dB at a frequency (None without a body)."""
+    if base.instrument["body"] != "modal":
+        return None
+    modes = body_modes(BodyModel.from_fields(base.instrument))
+    return lambda f: float(20.0 * np.log10(np.abs(modal_sum(np.array([f]), modes)[0])))
+
+
 def fit_key(base: Preset, key: int, notes: Sequence[NoteAnalysis], *, calibration_db: float | None = None,
             settings: TableSettings = TableSettings()) -> KeyFit:
     """Everything for one key from its notes (at least one, all of this key)."""
@@ -88,7 +98,20 @@ def fit_key(base: Preset, key: int, notes: Sequence[NoteAnalysis], *, calibratio
     cents = float(np.mean([n.cents_from_et for n in usable]))
     b, b_unc = _weighted([n.b for n in usable], [n.b_uncertainty for n in usable])
     remarks: list[str] = []
-    strikes = [n.strike for n in usable if n.strike is not None and n.strike.quality != "poor"]
+    # The model's levels are the strings' force on the bridge; a recording hears it through
+    # the soundboard. Where the base preset describes its board, the fits see the recorded
+    # levels with the board's gain taken out (a recording of an unknown board: as heard).
+    body = _body_db(base)
+    if body is None:
+        strikes = [n.strike for n in usable if n.strike is not None and n.strike.quality != "poor"]
+    else:
+        strikes = []
+        for n in usable:
+            parts = [p for p in n.partials if has_level(p)]
+            if len(parts) >= 6:
+                fit = fit_strike_ratio([p.n for p in parts], [p.level_db - body(p.freq_hz) for p in parts])
+                if fit.quality != "poor":
+                    strikes.append(fit)
     beta = beta_unc = None
     beta_quality = "poor"
     if strikes:
@@ -103,7 +126,7 @@ def fit_key(base: Preset, key: int, notes: Sequence[NoteAnalysis], *, calibratio
         prior = float(hammer_speed(DYNAMIC_VELOCITY[mark], base.instrument)) if mark else None
         parts = [p for p in n.partials if has_level(p)]
         levels.append(StrikeLevels(n=np.array([p.n for p in parts], dtype=np.int64),
-                                   level_db=np.array([p.level_db for p in parts]),
+                                   level_db=np.array([p.level_db - (body(p.freq_hz) if body else 0.0) for p in parts]),
                                    take=str(Path(n.path).parent), speed_prior_m_s=prior))
     felt: FeltFit | None = None
     try:

@@ -47,7 +47,7 @@ from ..tone.measured import MeasuredKey
 from ..tone.params import ENGINE_ONLY_FIELDS
 from ..tone.preset import Preset
 from ..tone.tables import KeyTable, ModalTables, TableSettings, build_tables
-from ..tone.unison import couple_tables, couple_unison
+from ..tone.unison import couple_tables, heard
 
 #: Largest change, in dB either way, that a voicing applies to a measured partial.
 VOICING_GAIN_LIMIT_DB = 20.0
@@ -166,7 +166,7 @@ class AdditiveModel:
         changed = [k for k in measured if not _same_key_values(preset, reference, k)]
         refs = build_tables(reference, settings=settings, keys=changed, progress=progress) if changed else None
         # A recording holds its unison's double decay already; the other keys get it from the model.
-        keys = {k: t if k in measured else couple_unison(t, preset) for k, t in physical.keys.items()}
+        keys = {k: t if k in measured else heard(t, preset) for k, t in physical.keys.items()}
         for k, m in measured.items():
             ref = refs[k] if refs is not None and k in changed else physical[k]
             keys[k] = additive_table(m, physical[k], ref, sample_rate_hz=settings.sample_rate_hz)
@@ -175,4 +175,4 @@ class AdditiveModel:
         # by the instrument's una corda level and tilt.
         return ModalTables(preset=preset, settings=settings, keys=keys, computed=tuple(computed),
                            cached=tuple(k for k in physical.keys if k not in computed),
-                           una_corda={k: couple_unison(t, preset) for k, t in una.keys.items()})
+                           una_corda={k: heard(t, preset) for k, t in una.keys.items()})

@@ -20,7 +20,7 @@ from __future__ import annotations
 
 __all__ = ["DAMPER_LEVELS", "FADE_S", "KeyData", "Instrument"]
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from numpy.typing import NDArray
@@ -29,6 +29,7 @@ from ..physics.constants import T60_LN
 from ..tone.tables import KeyTable, ModalTables
 from ..tone.velocity import hammer_speed
 from .bank import PartialTables, partial_tables
+from .sympathy import Answers, sympathetic_answers
 
 #: Damper engagement is quantised to this many steps (half pedal); level 0 is free.
 DAMPER_LEVELS = 8
@@ -47,6 +48,10 @@ class KeyData:
     amplitude: NDArray[np.complex128]  # (128, n): row v is MIDI velocity v (row 0 unused)
     una_corda_gain: NDArray[np.float64]  # (n,): the spectral change, where there is no una corda blow
     una_corda_amplitude: NDArray[np.complex128] | None = None  # (128, n): the una corda blow
+    #: The key struck while the sustain pedal lifts the dampers: these entries, then the
+    #: other keys' strings that answer them (:mod:`voicer.engine.sympathy`).
+    sympathetic: "KeyData | None" = None
+    answers: Answers | None = None
 
     @property
     def fade(self) -> PartialTables:
@@ -81,11 +86,14 @@ class Instrument:
         self.half_pedal = (int(inst["half_pedal_low_cc"]), int(inst["half_pedal_high_cc"]))
         self._speeds = hammer_speed(np.arange(1, 128), inst)
         una = tables.una_corda or {}
-        self.keys: dict[int, KeyData] = {key: self.key_data(table, una=una.get(key))
+        answers = sympathetic_answers(tables)
+        self.keys: dict[int, KeyData] = {key: self.key_data(table, una=una.get(key), answers=answers[key])
                                           for key, table in tables.keys.items()}
-        self.max_partials = max(len(k.freq_hz) for k in self.keys.values())
+        self.max_partials = max(len(k.sympathetic.freq_hz if k.sympathetic is not None else k.freq_hz)
+                                for k in self.keys.values())
 
-    def key_data(self, table: KeyTable, *, una: KeyTable | None = None, like: KeyData | None = None) -> KeyData:
+    def key_data(self, table: KeyTable, *, una: KeyTable | None = None, like: KeyData | None = None,
+                 answers: Answers | None = None) -> KeyData:
         """One key's data from its table and that of its una corda blow (allocates: off
         the audio thread).
 
@@ -94,24 +102,54 @@ class Instrument:
         and fade tables are shared instead of recomputed; a voice already sounding on
         ``like`` then keeps exactly its partials when a damper falls on it. Without ``una``
         (a live rebuild of the normal blow only), ``like``'s una corda blow is scaled by
-        the change of the normal one, entry by entry (within 20 dB).
+        the change of the normal one, entry by entry (within 20 dB). ``answers`` (default:
+        ``like``'s; a hammer change leaves the partials' frequencies alone) are the other
+        keys' modes that answer this key with the dampers lifted.
         """
-        key = table.key
-        inst = self.preset.instrument
+        data = self._key_data(table, una=una, like=like)
+        answers = answers if answers is not None else (like.answers if like is not None else None)
+        if answers is None or not len(answers.freq_hz) or answers.coupling.shape[0] != len(table.freq_hz):
+            return data
+        c = answers.coupling
+        ext = KeyTable(key=table.key, speeds_m_s=table.speeds_m_s,
+                       freq_hz=np.concatenate([table.freq_hz, answers.freq_hz]),
+                       sigma_per_s=np.concatenate([table.sigma_per_s, answers.sigma_per_s]),
+                       amplitude_n=np.zeros((1, 1, len(table.freq_hz) + len(answers.freq_hz)), dtype=complex),
+                       contact_s=table.contact_s, peak_force_n=table.peak_force_n, rebound_m_s=table.rebound_m_s,
+                       contacts=table.contacts)
+        like_ext = like.sympathetic if like is not None else None
+        levels = self._levels(ext, like_ext)
+
+        def extend(rows: NDArray[np.complex128]) -> NDArray[np.complex128]:
+            return np.concatenate([rows * (1.0 + c.sum(axis=1)), -(rows @ c)], axis=1)
+
+        sym = KeyData(key=table.key, freq_hz=ext.freq_hz, damped=data.damped, levels=levels,
+                      amplitude=extend(data.amplitude),
+                      una_corda_gain=np.concatenate([data.una_corda_gain, np.ones(len(answers.freq_hz))]),
+                      una_corda_amplitude=(extend(data.una_corda_amplitude) if data.una_corda_amplitude is not None
+                                           else None))
+        return replace(data, sympathetic=sym, answers=answers)
+
+    def _levels(self, table: KeyTable, like: KeyData | None) -> tuple[PartialTables, ...]:
+        """Damper and fade tables of a table's entries (``like``'s when they are the same)."""
         free = (-table.sigma_per_s + 2j * np.pi * table.freq_hz) / self.sample_rate
         if like is not None and np.array_equal(like.levels[0].lam, free):
-            levels = like.levels
-        else:
-            damper = float(self.preset.scale.value("damper_rate_per_s", key))
-            built = []
-            for level in range(DAMPER_LEVELS + 1):
-                sigma = table.sigma_per_s + damper * level / DAMPER_LEVELS
-                built.append(partial_tables((-sigma + 2j * np.pi * table.freq_hz) / self.sample_rate,
-                                            split=self.split, max_block=self.max_block))
-            fade_sigma = table.sigma_per_s + T60_LN / FADE_S
-            built.append(partial_tables((-fade_sigma + 2j * np.pi * table.freq_hz) / self.sample_rate,
+            return like.levels
+        damper = float(self.preset.scale.value("damper_rate_per_s", table.key))
+        built = []
+        for level in range(DAMPER_LEVELS + 1):
+            sigma = table.sigma_per_s + damper * level / DAMPER_LEVELS
+            built.append(partial_tables((-sigma + 2j * np.pi * table.freq_hz) / self.sample_rate,
                                         split=self.split, max_block=self.max_block))
-            levels = tuple(built)
+        fade_sigma = table.sigma_per_s + T60_LN / FADE_S
+        built.append(partial_tables((-fade_sigma + 2j * np.pi * table.freq_hz) / self.sample_rate,
+                                    split=self.split, max_block=self.max_block))
+        return tuple(built)
+
+    def _key_data(self, table: KeyTable, *, una: KeyTable | None, like: KeyData | None) -> KeyData:
+        key = table.key
+        inst = self.preset.instrument
+        levels = self._levels(table, like)
         amp = np.zeros((128, len(table.freq_hz)), dtype=np.complex128)
         amp[1:] = table.at_speeds(self._speeds)
         octaves = np.log2(table.freq_hz / table.freq_hz[0])

@@ -44,7 +44,7 @@ from numpy.typing import NDArray
 from ..errors import VoicerError
 from ..tone.preset import Preset, parse_preset
 from ..tone.tables import KeyTable, TableSettings, build_tables
-from ..tone.unison import couple_unison
+from ..tone.unison import heard
 from .instrument import Instrument, KeyData
 from .knob_state import KnobState, with_values
 from .renderer import Renderer
@@ -74,7 +74,7 @@ def build_key_tables(base: Preset, values: Mapping[int, Mapping[str, float]], *,
     preset = with_values(base, values)
     keys = sorted(values)
     raw = build_tables(preset, settings=settings, keys=keys, use_cache=False).keys
-    tables = {k: couple_unison(t, preset) for k, t in raw.items()}
+    tables = {k: heard(t, preset) for k, t in raw.items()}
     if model == "additive":
         measured = [k for k in keys if k in preset.measured]
         refs = references if references is not None else {}

@@ -27,7 +27,7 @@ import numpy as np
 from ..errors import ParameterError
 
 from .bank import OscillatorBank
-from .instrument import DAMPER_LEVELS, Instrument
+from .instrument import DAMPER_LEVELS, Instrument, KeyData
 
 _FADING = DAMPER_LEVELS + 1  # level index of the fade tables
 
@@ -52,6 +52,7 @@ class Voices:
         if len(bank.owner_counts) < ids:
             raise ParameterError(f"the bank keeps counts for {len(bank.owner_counts)} owners; voices need {ids}")
         self.key_of = [-1] * ids
+        self.data_of: list[KeyData | None] = [None] * ids  # the KeyData each voice plays (its entries)
         self.level_of = [0] * ids
         self.fading = [False] * ids
         self.free = list(range(ids - 1, -1, -1))
@@ -83,6 +84,8 @@ class Voices:
         for v in self.by_key[key]:
             self._released.pop(v, None)
         self._update_key(key, at)  # an already sounding key stops being damped
+        if data.sympathetic is not None and self.inst.damper_level(self.sustain_cc) < DAMPER_LEVELS:
+            data = data.sympathetic  # the other keys' strings are free to answer
         n = len(data.freq_hz)
         while self.active >= self.max_voices:
             self._steal(at=at)
@@ -98,7 +101,7 @@ class Voices:
             amp[:] = data.amplitude[min(velocity, 127)]
         v = self.free.pop()
         self.bank.add_tables(data.levels[0], amp, owner=v, at=at, correct=self.correct)
-        self.key_of[v], self.level_of[v], self.fading[v] = key, 0, False
+        self.key_of[v], self.level_of[v], self.fading[v], self.data_of[v] = key, 0, False, data
         self.by_key[key].append(v)
         self.active += 1
 
@@ -177,10 +180,9 @@ class Voices:
         if not voices:
             return
         level = self._level(key)
-        tables = self.inst.keys[key].levels[level]
         for v in voices:
             if self.level_of[v] != level:
-                self.bank.retune(v, tables, at, self.correct)
+                self.bank.retune(v, self.data_of[v].levels[level], at, self.correct)
                 self.level_of[v] = level
 
     def _update_all(self, at: int = 0) -> None:
@@ -192,7 +194,7 @@ class Voices:
         key = self.key_of[v]
         if key < 0 or self.fading[v]:
             return
-        self.bank.retune(v, self.inst.keys[key].fade, at, self.correct)
+        self.bank.retune(v, self.data_of[v].fade, at, self.correct)
         self.by_key[key].remove(v)
         self._released.pop(v, None)
         self.fading[v], self.level_of[v] = True, _FADING

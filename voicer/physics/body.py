@@ -68,7 +68,7 @@ __all__ = [
 
 import math
 from dataclasses import dataclass, fields
-from typing import Any, Literal, NamedTuple
+from typing import Any, Literal, Mapping, NamedTuple
 
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
@@ -182,6 +182,12 @@ class BodyModel:
                 f"body fields: lowest_mode_hz {self.lowest_mode_hz:g} to highest_mode_hz {self.highest_mode_hz:g} "
                 f"at mode_spacing_hz {self.mode_spacing_hz:g} gives {self.mode_count} modes; allowed: at most "
                 f"{MAX_BODY_MODES} (widen the spacing or narrow the band)")
+
+    @classmethod
+    def from_fields(cls, values: Mapping[str, Any], *, prefix: str = "body_") -> "BodyModel":
+        """The model of the ``<prefix><field>`` entries of a mapping (a preset's
+        ``[instrument]`` table); absent fields take their defaults."""
+        return cls(**{f.name: values.get(prefix + f.name, f.default) for f in BODY_FIELDS})
 
     @property
     def mode_count(self) -> int:

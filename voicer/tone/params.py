@@ -23,6 +23,7 @@ from dataclasses import dataclass
 from typing import Any, Literal
 
 from ..errors import ParameterError
+from ..physics.body import BODY_FIELDS
 from ..physics.felt import FELT_LAWS
 from ..physics.strings import END_CONDITIONS
 from ..physics.tuning import HIGHEST_KEY, LOWEST_KEY
@@ -219,6 +220,18 @@ INSTRUMENT_PARAMS: tuple[Param, ...] = (
           "above f1", lo=-12.0, hi=3.0, default=-1.5),
     Param("polarizations", "int", "", "string motions modelled at the bridge: 1 (vertical) or 2 (and horizontal)",
           lo=1, hi=2, default=1),
+    Param("sympathetic_coupling", "float", "",
+          "part of a unison's bridge coupling that reaches the strings of other keys: with the dampers lifted "
+          "they answer the partials near their own (0: off)", lo=0.0, hi=1.0, default=0.0),
+    Param("sympathetic_floor_db", "float", "dB",
+          "weakest answer of a string to a partial that is kept, against the partial", lo=-100.0, hi=-20.0,
+          default=-50.0),
+    Param("sympathetic_max_entries", "int", "", "answering string modes kept per key (the strongest)",
+          lo=0, hi=1024, default=96),
+    Param("body", "str", "", "soundboard response applied to the partials: none, or modal (the body_ fields)",
+          default="none", choices=("none", "modal")),
+    *(Param(f"body_{f.name}", f.kind, f.unit, f.help, lo=f.lo, hi=f.hi, lo_open=f.lo_open, hi_open=f.hi_open,
+            default=f.default) for f in BODY_FIELDS),
     Param("last_wound_key", "int", "", f"highest key with wound strings ({LOWEST_KEY - 1} = none)",
           lo=LOWEST_KEY - 1, hi=HIGHEST_KEY, default=LOWEST_KEY - 1),
 )

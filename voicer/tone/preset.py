@@ -60,6 +60,7 @@ from numpy.typing import NDArray
 
 from ..errors import ParameterError, PresetError
 from ..io.atomic import atomic_write_bytes
+from ..physics.body import BodyModel
 from ..physics.scale import Scale
 from ..physics.tuning import HIGHEST_KEY, KEYS, LOWEST_KEY
 from .interp import pchip
@@ -345,6 +346,11 @@ def _check_consistency(preset: Preset) -> None:
     if inst["half_pedal_low_cc"] >= inst["half_pedal_high_cc"]:
         raise _err(source, f"half_pedal_low_cc = {inst['half_pedal_low_cc']} must be below half_pedal_high_cc = "
                    f"{inst['half_pedal_high_cc']}", field_name="half_pedal_low_cc")
+    if inst["body"] == "modal":
+        try:
+            BodyModel.from_fields(inst)
+        except ParameterError as exc:
+            raise _err(source, str(exc), field_name="body") from None
     hysteresis = preset.resolved["felt_hysteresis"]
     if inst["felt_law"] != "stulov" and np.any(hysteresis > 0):
         key = int(KEYS[np.argmax(hysteresis > 0)])

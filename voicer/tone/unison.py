@@ -1,5 +1,6 @@
 """The heard partials of a key: its strings' blow (a modal table) through the coupling of
-the unison at the bridge (:mod:`voicer.physics.unison`, Weinreich 1977).
+the unison at the bridge (:mod:`voicer.physics.unison`, Weinreich 1977), then through
+the soundboard's radiation (:mod:`voicer.physics.body`), a static gain per entry.
 
 A key's modal table gives, per partial, each string's bridge-force amplitude after the
 blow, all strings at the key's frequencies and decay rates. Here every partial of a
@@ -29,11 +30,15 @@ a few cents change nothing in a contact of a few milliseconds.
 
 from __future__ import annotations
 
-__all__ = ["UNISON_FIELDS", "is_coupled", "couple_unison", "couple_tables"]
+__all__ = ["UNISON_FIELDS", "is_coupled", "couple_unison", "radiate", "heard", "couple_tables"]
+
+import functools
+from dataclasses import replace
 
 import numpy as np
 
 from ..errors import ParameterError
+from ..physics.body import BodyModel, BodyModes, body_modes, modal_sum
 from ..physics.unison import coupled_modes, heard_amplitudes, unison_matrix
 from .preset import Preset
 from .tables import KeyTable, ModalTables
@@ -56,6 +61,27 @@ def is_coupled(preset: Preset, key: int) -> bool:
     mistuned = any(v[f"mistune_{s}_cents"] != 0.0 for s in range(1, strings + 1))
     return (preset.instrument["polarizations"] == 2 or mistuned
             or (strings > 1 and v["bridge_loss_fraction"] > 0.0))
+
+
+@functools.lru_cache(maxsize=8)
+def _body_modes(model: BodyModel) -> BodyModes:
+    return body_modes(model)
+
+
+def radiate(table: KeyTable, preset: Preset) -> KeyTable:
+    """The table through the preset's soundboard (``[instrument] body = "modal"``): each
+    entry's amplitude times the body's complex gain at its frequency
+    (:mod:`voicer.physics.body`), or the table as it is (``body = "none"``)."""
+    if preset.instrument["body"] != "modal":
+        return table
+    gain = modal_sum(table.freq_hz, _body_modes(BodyModel.from_fields(preset.instrument)))
+    return replace(table, amplitude_n=table.amplitude_n * gain[None, None, :])
+
+
+def heard(table: KeyTable, preset: Preset) -> KeyTable:
+    """A key's modal table as the listener hears it: the unison coupled at the bridge
+    (:func:`couple_unison`), then radiated by the soundboard (:func:`radiate`)."""
+    return radiate(couple_unison(table, preset), preset)
 
 
 def couple_unison(table: KeyTable, preset: Preset) -> KeyTable:
@@ -106,11 +132,11 @@ def couple_unison(table: KeyTable, preset: Preset) -> KeyTable:
 
 
 def couple_tables(tables: ModalTables, una_corda: ModalTables | None = None) -> ModalTables:
-    """Every key of a preset's tables through :func:`couple_unison`, with the una corda
-    blows' tables (of the same preset and keys) beside them."""
+    """Every key of a preset's tables as :func:`heard`, with the una corda blows' tables
+    (of the same preset and keys) beside them."""
     preset = tables.preset
-    una = ({k: couple_unison(t, preset) for k, t in una_corda.keys.items()} if una_corda is not None
+    una = ({k: heard(t, preset) for k, t in una_corda.keys.items()} if una_corda is not None
            else tables.una_corda)
     return ModalTables(preset=preset, settings=tables.settings,
-                       keys={k: couple_unison(t, preset) for k, t in tables.keys.items()},
+                       keys={k: heard(t, preset) for k, t in tables.keys.items()},
                        computed=tables.computed, cached=tables.cached, una_corda=una)
