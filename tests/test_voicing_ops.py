@@ -539,3 +539,36 @@ def test_public_names() -> None:
     for name in ("VoicingPlan", "Change", "Operation", "VoicedPreset", "load_voicing", "parse_voicing",
                  "apply_voicing", "compose", "reverse_plan", "OPERATIONS"):
         assert name in voicer.__all__ and getattr(voicer, name) is getattr(voicing_module, name)
+
+
+def test_tune_unison_retunes_one_string_and_reverses(demo: Preset) -> None:
+    # A unison correction in cents (common practice: a technician cleans up a unison by a
+    # cent or two): mistune_<string>_cents plus move_cents, undone by the opposite move.
+    p = demo.with_key_values(60, {"mistune_3_cents": 2.0})
+    step = plan(op("tune_unison", 60, string=3, move_cents=-2.0))
+    voiced = apply_voicing(p, step)
+    assert voiced.resolved["mistune_3_cents"][60 - 21] == pytest.approx(0.0, abs=1e-12)
+    back = apply_voicing(voiced, reverse_plan(step))
+    assert back.to_dict() == p.to_dict()
+
+
+def test_tune_unison_ends_the_beat_it_corrects(demo: Preset) -> None:
+    # Weinreich 1977: a string a few cents off beats against the others; brought back in
+    # tune, the modes lock (their frequencies then lie within the bridge's coupling, a
+    # small fraction of the beat).
+    from voicer.tone.tables import build_tables
+    from voicer.tone.unison import couple_unison
+    off = demo.with_key_values(60, {"mistune_2_cents": 0.0, "mistune_3_cents": 3.0})
+    fixed = apply_voicing(off, plan(op("tune_unison", 60, string=3, move_cents=-3.0)))
+    raw = build_tables(off, keys=[60])[60]
+    spread = [np.ptp(couple_unison(raw, p).freq_hz[:3]) for p in (off, fixed)]
+    assert spread[0] > 0.4 and spread[1] < 0.1 * spread[0], spread
+
+
+def test_tune_unison_refuses_a_string_the_key_does_not_have(demo: Preset, tmp_path: Path) -> None:
+    path, _ = write(tmp_path, [("operation", {"op": "tune_unison", "keys": 40, "string": 3, "move_cents": 1.0})])
+    with pytest.raises(PresetError, match="tuning string 3: this key has 2 string"):
+        apply_voicing(demo, voicing_module.load_voicing(path))
+    path, _ = write(tmp_path, [("operation", {"op": "tune_unison", "keys": 60, "string": 2, "move_cents": 8.0})])
+    with pytest.raises(PresetError, match="move_cents"):
+        voicing_module.load_voicing(path)

@@ -9,7 +9,7 @@ the voicing job in trade terms. A format-2 plan may hold both, applied in file o
     description = "..."
 
     [[operation]]
-    op = "needle"                # needle, harden, file, strike_point, mating
+    op = "needle"                # needle, harden, file, strike_point, mating, tune_unison
     keys = "53-61"               # a range, one key (60) or a list ([60, 62, 64])
     amount_percent = 15
     where = "shoulders"          # crown, shoulders or throughout
@@ -36,6 +36,10 @@ outside it is an error, not a clamp:
   termination: the capo or agraffe) or bridge. A strike line is regulated by millimetres.
 - ``mating``: ``string`` 1..3 (1 on the bass side), ``move_mm`` -1 <= x <= 1 mm: how much
   nearer the hammer that string then sits. Mating errors are fractions of a millimetre.
+- ``tune_unison``: ``string`` 1..3, ``move_cents`` -5 <= x <= 5 cents: how much sharper
+  that string then sounds against the key's pitch. A unison is cleaned up by a cent or
+  two, where its strings drift apart between tunings (and where a slight mistuning is
+  left on purpose for a longer aftersound, common practice).
 
 What each maps to, on each listed key (values as the preset resolves them):
 
@@ -75,6 +79,8 @@ What each maps to, on each listed key (values as the preset resolves them):
 - ``file``: ``hammer_mass_g`` minus ``mass_g``, ``hammer_width_mm`` plus ``width_mm``.
 - ``strike_point``: ``strike_ratio`` minus (toward the near end) or plus (toward the
   bridge) ``move_mm / speaking_length_m`` (in metres over metres).
+- ``tune_unison``: ``mistune_<string>_cents`` plus ``move_cents`` (the same rule for a
+  string the key does not have).
 - ``mating``: ``mating_<string>_mm`` plus ``move_mm``. A string the key does not have
   (string 3 of a bichord, the key's resolved ``strings`` below ``string``) is an error
   naming the key.
@@ -213,6 +219,11 @@ OPERATIONS: tuple[OperationSpec, ...] = (
         Param("string", "int", "", "string of the unison, 1 on the bass side", lo=1, hi=3),
         Param("move_mm", "float", "mm", "how much nearer the hammer the string then sits", lo=-1.0, hi=1.0)),
         "`mating_<string>_mm` plus `move_mm`; an error if the key has fewer strings"),
+    OperationSpec("tune_unison", "retune one string of the unison against the others", (
+        Param("string", "int", "", "string of the unison, 1 on the bass side", lo=1, hi=3),
+        Param("move_cents", "float", "cents", "how much sharper it then sounds (negative: flatter)",
+              lo=-5.0, hi=5.0)),
+        "`mistune_<string>_cents` plus `move_cents`; an error if the key has fewer strings"),
 )
 _SPEC = {s.name: s for s in OPERATIONS}
 
@@ -264,6 +275,8 @@ class Operation:
             return f"file {a['mass_g']:g} g off, width {a['width_mm']:+g} mm"
         if self.op == "strike_point":
             return f"strike point {a['move_mm']:g} mm toward the {a['toward'].replace('_', ' ')}"
+        if self.op == "tune_unison":
+            return f"string {a['string']} tuned {a['move_cents']:+g} cents"
         return f"mating string {a['string']} {a['move_mm']:+g} mm nearer"
 
     def to_table(self) -> dict[str, Any]:
@@ -520,13 +533,16 @@ def _new_values(preset: Preset, step: Step, where: str, source: str | None) -> d
             sign = -1.0 if a["toward"] == "near_end" else 1.0
             move = sign * a["move_mm"] * 1e-3 / float(v["speaking_length_m"][i])
             out[key] = {"strike_ratio": float(v["strike_ratio"][i]) + move}
-        else:
-            s, name = a["string"], f"mating_{a['string']}_mm"
+        else:  # mating, tune_unison: one string of the unison
+            mating = step.op == "mating"
+            s = a["string"]
+            name = f"mating_{s}_mm" if mating else f"mistune_{s}_cents"
             strings = int(v["strings"][i])
             if strings < s:
-                raise PresetError(f"{where}: mating string {s}: this key has {strings} string(s), "
-                                  f"so there is no string {s}", file=source, key=key, field=name)
-            out[key] = {name: float(v[name][i]) + a["move_mm"]}
+                raise PresetError(f"{where}: {'mating' if mating else 'tuning'} string {s}: this key has "
+                                  f"{strings} string(s), so there is no string {s}", file=source, key=key,
+                                  field=name)
+            out[key] = {name: float(v[name][i]) + (a["move_mm"] if mating else a["move_cents"])}
     return out
 
 
@@ -597,6 +613,8 @@ def _inverse(step: Step, source: str | None) -> Step:
         a["mass_g"], a["width_mm"] = -a["mass_g"], -a["width_mm"]
     elif op == "strike_point":
         a["toward"] = TOWARD[1 - TOWARD.index(a["toward"])]
+    elif op == "tune_unison":
+        a["move_cents"] = -a["move_cents"]
     else:
         a["move_mm"] = -a["move_mm"]
     return Operation(op=op, keys=step.keys, amounts=a, label=label, source=step.source, undoes=step)
