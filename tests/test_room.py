@@ -267,3 +267,33 @@ def test_the_renderer_rings_on_after_the_note_with_the_room(demo) -> None:
     np.testing.assert_allclose(wet[:400], 0.7 * dry[:400], rtol=1e-6, atol=1e-9)  # 480 samples of pre-delay
     late = slice(FS // 2, None)  # half a second after the damper fell
     assert np.sqrt(np.mean(wet[late] ** 2)) > 10 * np.sqrt(np.mean(dry[late] ** 2))
+
+
+def test_render_command_adds_the_room(tmp_path, capsys) -> None:
+    # `voicer render --room RT60_S`: the same passage with a 2 s room rings on after the
+    # strings are damped; a bad reverberation time is refused with one line, exit 2.
+    import soundfile
+
+    from voicer.cli import main
+
+    mid = tmp_path / "staccato.mid"
+    song = mido.MidiFile()
+    track = mido.MidiTrack()
+    song.tracks.append(track)
+    track += [mido.Message("note_on", note=60, velocity=100, time=0),
+              mido.Message("note_off", note=60, time=song.ticks_per_beat // 4)]
+    song.save(str(mid))
+    levels = {}
+    for name, extra in (("dry", []), ("room", ["--room", "2.0", "--room-mix", "0.5"])):
+        out = tmp_path / f"{name}.wav"
+        assert main(["render", "demo", str(mid), "-o", str(out), "--tail", "1.5", *extra]) == 0
+        y, fs = soundfile.read(str(out))
+        late = y[int(1.0 * fs):int(1.4 * fs)]
+        levels[name] = float(np.sqrt(np.mean(late**2)))
+    assert levels["room"] > 10 * levels["dry"]
+    capsys.readouterr()
+    with pytest.raises(SystemExit) as stop:
+        main(["render", "demo", str(mid), "-o", str(tmp_path / "x.wav"), "--room", "30"])
+    assert stop.value.code == 2
+    err = capsys.readouterr().err
+    assert "room RT60" in err and err.count("\n") == 1

@@ -37,6 +37,44 @@ from .tone.voicing import (
     reverse_plan,
 )
 
+#: Further public names, imported when first used (PEP 562), so that ``import voicer``
+#: stays light: name -> module.
+_LAZY: dict[str, str] = {
+    "TableSettings": "voicer.tone.tables",
+    "ModalTables": "voicer.tone.tables",
+    "build_tables": "voicer.tone.tables",
+    "couple_tables": "voicer.tone.unison",
+    "Evenness": "voicer.report.evenness",
+    "measure": "voicer.report.evenness",
+    "Comparison": "voicer.report.compare",
+    "compare": "voicer.report.compare",
+    "comparison_json": "voicer.report.compare",
+    "write_report": "voicer.report.compare",
+    "Suggestion": "voicer.report.suggest",
+    "suggest": "voicer.report.suggest",
+    "write_plan": "voicer.report.suggest",
+    "partials_loudness_phon": "voicer.report.loudness",
+    "BodyModel": "voicer.physics.body",
+    "body_gain": "voicer.physics.body",
+    "PhysicalModel": "voicer.engine.models",
+    "AdditiveModel": "voicer.engine.additive",
+    "Instrument": "voicer.engine.instrument",
+    "Renderer": "voicer.engine.renderer",
+    "RoomEffect": "voicer.engine.room",
+}
+
+
+def __getattr__(name: str) -> object:
+    module = _LAZY.get(name)
+    if module is None:
+        raise AttributeError(f"module 'voicer' has no attribute {name!r}")
+    import importlib
+
+    value = getattr(importlib.import_module(module), name)
+    globals()[name] = value
+    return value
+
+
 __all__ = [
     "__version__",
     "VoicerError",
@@ -79,4 +117,5 @@ __all__ = [
     "load_voicing",
     "parse_voicing",
     "reverse_plan",
+    *_LAZY,
 ]

@@ -137,6 +137,11 @@ def _audio_options(parser: argparse.ArgumentParser, *, block: bool = True) -> No
         parser.add_argument("--model", default="physical", help="model plugin (default physical)")
     parser.add_argument("--gain-db", type=float, default=DEFAULT_GAIN_DB, metavar="DB",
                         help=f"master gain from bridge force to full scale (default {DEFAULT_GAIN_DB:g})")
+    if block:
+        parser.add_argument("--room", type=_ranged_float(0.1, 10.0, "room RT60"), metavar="RT60_S",
+                            help="add a generated room (the room effect) with this reverberation time, s")
+        parser.add_argument("--room-mix", type=_ranged_float(0.0, 1.0, "room mix"), default=0.25, metavar="X",
+                            help="share of the room in the output, 0..1 (default 0.25; with --room)")
 
 
 def _positive_int(text: str) -> int:

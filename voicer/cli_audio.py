@@ -23,6 +23,7 @@ from .engine.live import LiveInput
 from .engine.live_knobs import LiveKnobs
 from .engine.offline import RenderResult, render_events
 from .engine.renderer import Renderer
+from .engine.room import RoomEffect
 from .engine.rebuild import LIVE_MODELS
 from .engine.session import prepare_states, table_settings
 from .errors import VoicerError
@@ -43,16 +44,27 @@ def _tty() -> bool:
     return sys.stderr.isatty()
 
 
+def _effects(room_s: float | None, mix: float, *, sample_rate: int, block: int) -> list[RoomEffect]:
+    """The effects the options ask for (--room), prepared."""
+    if room_s is None:
+        return []
+    room = RoomEffect(rt60_s=room_s, wet_mix=mix)
+    room.prepare(sample_rate, block, 1)
+    return [room]
+
+
 def render_file(preset: Preset, midi: str | Path, out: str | Path, *, voicing: str | Path | None, sample_rate: int,
                 block: int, gain_db: float, tail_s: float, subtype: str | None, model: str = "physical",
-                state: str = "B") -> RenderResult:
-    """Render a MIDI file through one voicing state (A: the preset, B: with the plan) to a file."""
+                state: str = "B", room_s: float | None = None, room_mix: float = 0.25) -> RenderResult:
+    """Render a MIDI file through one voicing state (A: the preset, B: with the plan) to a
+    file, with a generated room if ``room_s`` (its RT60) is given."""
     source = MidiFileSource(midi)
     with FileSink(out, subtype=subtype) as sink:  # checks the output before the tables are built
         sink.open(sample_rate=sample_rate, channels=CHANNELS, block=block)
         states = prepare_states(preset, voicing if state == "B" else None, sample_rate=sample_rate, block=block,
                                 model=model, both=False, progress=_tty())
-        renderer = Renderer(states, gain_db=gain_db)
+        renderer = Renderer(states, gain_db=gain_db,
+                            effects=_effects(room_s, room_mix, sample_rate=sample_rate, block=block))
         result = render_events(renderer, source.events(), sink, tail_s=tail_s, channels=CHANNELS, progress=_tty())
     return result
 
@@ -87,7 +99,7 @@ def cmd_render(args: argparse.Namespace) -> int:
     state = "B" if args.voicing else "A"
     result = render_file(preset, args.midi, args.output, voicing=args.voicing, sample_rate=args.sample_rate,
                          block=args.block, gain_db=args.gain_db, tail_s=args.tail, subtype=args.subtype,
-                         model=args.model, state=state)
+                         model=args.model, state=state, room_s=args.room, room_mix=args.room_mix)
     print(_summary(args.output, result, args.sample_rate))
     if args.stats_json:
         data = _stats_json(result, sample_rate=args.sample_rate, block=args.block, state=state)
@@ -139,7 +151,8 @@ def _play(args: argparse.Namespace) -> int:
     key_range = parse_key_spec(args.knob_keys) if mapping is not None and args.knob_keys else None
     states = prepare_states(preset, args.voicing, sample_rate=args.sample_rate, block=args.block, model=args.model,
                             progress=_tty())
-    renderer = Renderer(states, gain_db=args.gain_db, ab_cc=args.ab_cc)
+    renderer = Renderer(states, gain_db=args.gain_db, ab_cc=args.ab_cc,
+                        effects=_effects(args.room, args.room_mix, sample_rate=args.sample_rate, block=args.block))
     knobs: LiveKnobs | None = None
     if mapping is not None:
         knobs = LiveKnobs(mapping, renderer, root=preset, base_plan=load_voicing(args.voicing) if args.voicing else None,
