@@ -52,6 +52,9 @@ class KeyData:
     #: other keys' strings that answer them (:mod:`voicer.engine.sympathy`).
     sympathetic: "KeyData | None" = None
     answers: Answers | None = None
+    #: The same with the sustain pedal up: only the strings without dampers answer.
+    free_sympathetic: "KeyData | None" = None
+    free_answers: Answers | None = None
 
     @property
     def fade(self) -> PartialTables:
@@ -87,13 +90,15 @@ class Instrument:
         self._speeds = hammer_speed(np.arange(1, 128), inst)
         una = tables.una_corda or {}
         answers = sympathetic_answers(tables)
-        self.keys: dict[int, KeyData] = {key: self.key_data(table, una=una.get(key), answers=answers[key])
+        free = sympathetic_answers(tables, answering=[k for k in tables.keys if k > self.last_damped_key])
+        self.keys: dict[int, KeyData] = {key: self.key_data(table, una=una.get(key), answers=answers[key],
+                                                            free_answers=free[key])
                                           for key, table in tables.keys.items()}
-        self.max_partials = max(len(k.sympathetic.freq_hz if k.sympathetic is not None else k.freq_hz)
-                                for k in self.keys.values())
+        self.max_partials = max(len(d.freq_hz) for k in self.keys.values()
+                                for d in (k, k.sympathetic, k.free_sympathetic) if d is not None)
 
     def key_data(self, table: KeyTable, *, una: KeyTable | None = None, like: KeyData | None = None,
-                 answers: Answers | None = None) -> KeyData:
+                 answers: Answers | None = None, free_answers: Answers | None = None) -> KeyData:
         """One key's data from its table and that of its una corda blow (allocates: off
         the audio thread).
 
@@ -104,12 +109,24 @@ class Instrument:
         (a live rebuild of the normal blow only), ``like``'s una corda blow is scaled by
         the change of the normal one, entry by entry (within 20 dB). ``answers`` (default:
         ``like``'s; a hammer change leaves the partials' frequencies alone) are the other
-        keys' modes that answer this key with the dampers lifted.
+        keys' modes that answer this key with the dampers lifted, ``free_answers`` those of
+        the keys without dampers, which answer whatever the pedal.
         """
         data = self._key_data(table, una=una, like=like)
         answers = answers if answers is not None else (like.answers if like is not None else None)
+        free = free_answers if free_answers is not None else (like.free_answers if like is not None else None)
+        return replace(data, answers=answers, free_answers=free,
+                       sympathetic=self._answered(data, table, answers, like.sympathetic if like else None),
+                       free_sympathetic=self._answered(data, table, free,
+                                                       like.free_sympathetic if like else None))
+
+    def _answered(self, data: KeyData, table: KeyTable, answers: Answers | None,
+                  like: KeyData | None) -> KeyData | None:
+        """The key's entries followed by the answering modes of other keys (None without
+        any). An answering mode keeps its own string's damper: none above
+        ``last_damped_key``, else its key's rate (lifted with the dampers by the pedal)."""
         if answers is None or not len(answers.freq_hz) or answers.coupling.shape[0] != len(table.freq_hz):
-            return data
+            return None
         c = answers.coupling
         ext = KeyTable(key=table.key, speeds_m_s=table.speeds_m_s,
                        freq_hz=np.concatenate([table.freq_hz, answers.freq_hz]),
@@ -117,25 +134,30 @@ class Instrument:
                        amplitude_n=np.zeros((1, 1, len(table.freq_hz) + len(answers.freq_hz)), dtype=complex),
                        contact_s=table.contact_s, peak_force_n=table.peak_force_n, rebound_m_s=table.rebound_m_s,
                        contacts=table.contacts)
-        like_ext = like.sympathetic if like is not None else None
-        levels = self._levels(ext, like_ext)
+        scale = self.preset.scale
+        own = np.full(len(table.freq_hz), float(scale.value("damper_rate_per_s", table.key)))
+        theirs = np.array([float(scale.value("damper_rate_per_s", int(k))) if k <= self.last_damped_key else 0.0
+                           for k in answers.keys])
+        levels = self._levels(ext, like, damper=np.concatenate([own, theirs]))
 
         def extend(rows: NDArray[np.complex128]) -> NDArray[np.complex128]:
             return np.concatenate([rows * (1.0 + c.sum(axis=1)), -(rows @ c)], axis=1)
 
-        sym = KeyData(key=table.key, freq_hz=ext.freq_hz, damped=data.damped, levels=levels,
-                      amplitude=extend(data.amplitude),
-                      una_corda_gain=np.concatenate([data.una_corda_gain, np.ones(len(answers.freq_hz))]),
-                      una_corda_amplitude=(extend(data.una_corda_amplitude) if data.una_corda_amplitude is not None
-                                           else None))
-        return replace(data, sympathetic=sym, answers=answers)
+        return KeyData(key=table.key, freq_hz=ext.freq_hz, damped=data.damped, levels=levels,
+                       amplitude=extend(data.amplitude),
+                       una_corda_gain=np.concatenate([data.una_corda_gain, np.ones(len(answers.freq_hz))]),
+                       una_corda_amplitude=(extend(data.una_corda_amplitude) if data.una_corda_amplitude is not None
+                                            else None))
 
-    def _levels(self, table: KeyTable, like: KeyData | None) -> tuple[PartialTables, ...]:
-        """Damper and fade tables of a table's entries (``like``'s when they are the same)."""
+    def _levels(self, table: KeyTable, like: KeyData | None,
+                damper: NDArray[np.float64] | None = None) -> tuple[PartialTables, ...]:
+        """Damper and fade tables of a table's entries (``like``'s when they are the same);
+        ``damper``: each entry's damper rate (default the key's)."""
         free = (-table.sigma_per_s + 2j * np.pi * table.freq_hz) / self.sample_rate
         if like is not None and np.array_equal(like.levels[0].lam, free):
             return like.levels
-        damper = float(self.preset.scale.value("damper_rate_per_s", table.key))
+        if damper is None:
+            damper = np.full(len(table.freq_hz), float(self.preset.scale.value("damper_rate_per_s", table.key)))
         built = []
         for level in range(DAMPER_LEVELS + 1):
             sigma = table.sigma_per_s + damper * level / DAMPER_LEVELS

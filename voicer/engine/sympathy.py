@@ -23,9 +23,11 @@ another key along the bridge (0 switches the resonance off).
 
 The answers are computed when a state is prepared: a strike made while the sustain pedal
 lifts the dampers plays its key's entries followed by the answering modes of the other
-keys (one extra entry each), so a note-on costs nothing more than its entries. The
-answering modes then follow the struck voice's damper: right once the key is released
-(the pedal damps both), a little long while it is held and the pedal comes up.
+keys (one extra entry each), so a note-on costs nothing more than its entries; with the
+pedal up, only the strings without dampers (above ``last_damped_key``) answer. An
+answering mode keeps its own string's damper (none for the undamped strings), engaged
+with the struck voice's: right once the key is released (the pedal damps both), a little
+long while it is held and the pedal comes up.
 """
 
 from __future__ import annotations
@@ -33,6 +35,7 @@ from __future__ import annotations
 __all__ = ["Answers", "sympathetic_answers"]
 
 from dataclasses import dataclass
+from typing import Iterable
 
 import numpy as np
 from numpy.typing import NDArray
@@ -67,22 +70,24 @@ def _bridge_loss(tables: ModalTables, key: int) -> NDArray[np.float64]:
     return float(tables.preset.scale.value("bridge_loss_fraction", key)) * t.sigma_per_s
 
 
-def sympathetic_answers(tables: ModalTables) -> dict[int, Answers]:
-    """Per key, the answering modes of the other keys and their couplings (empty where
-    ``sympathetic_coupling`` is 0 or no pair reaches the floor)."""
+def sympathetic_answers(tables: ModalTables, *, answering: Iterable[int] | None = None) -> dict[int, Answers]:
+    """Per key, the answering modes of the other keys (of ``answering``, default all) and
+    their couplings (empty where ``sympathetic_coupling`` is 0 or no pair reaches the
+    floor)."""
     inst = tables.preset.instrument
     s = float(inst["sympathetic_coupling"])
     keys = sorted(tables.keys)
+    resonators = keys if answering is None else sorted(set(answering) & set(keys))
     empty = {k: Answers(np.zeros(0), np.zeros(0), np.zeros(0, dtype=np.int64),
                         np.zeros((len(tables[k].freq_hz), 0), dtype=np.complex128)) for k in keys}
-    if s == 0.0:
+    if s == 0.0 or not resonators:
         return empty
     floor = 10.0 ** (float(inst["sympathetic_floor_db"]) / 20.0)
     cap = int(inst["sympathetic_max_entries"])
-    freq = np.concatenate([tables[k].freq_hz for k in keys])
-    sigma = np.concatenate([tables[k].sigma_per_s for k in keys])
-    eta = np.concatenate([_bridge_loss(tables, k) for k in keys])
-    owner = np.concatenate([np.full(len(tables[k].freq_hz), k) for k in keys])
+    freq = np.concatenate([tables[k].freq_hz for k in resonators])
+    sigma = np.concatenate([tables[k].sigma_per_s for k in resonators])
+    eta = np.concatenate([_bridge_loss(tables, k) for k in resonators])
+    owner = np.concatenate([np.full(len(tables[k].freq_hz), k) for k in resonators])
     order = np.argsort(freq)
     freq, sigma, eta, owner = freq[order], sigma[order], eta[order], owner[order]
     lam = -sigma + 2j * np.pi * freq

@@ -84,8 +84,10 @@ class Voices:
         for v in self.by_key[key]:
             self._released.pop(v, None)
         self._update_key(key, at)  # an already sounding key stops being damped
-        if data.sympathetic is not None and self.inst.damper_level(self.sustain_cc) < DAMPER_LEVELS:
-            data = data.sympathetic  # the other keys' strings are free to answer
+        if self.inst.damper_level(self.sustain_cc) < DAMPER_LEVELS:
+            data = data.sympathetic or data  # the other keys' strings are free to answer
+        else:
+            data = data.free_sympathetic or data  # only the strings without dampers
         n = len(data.freq_hz)
         while self.active >= self.max_voices:
             self._steal(at=at)
