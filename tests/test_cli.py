@@ -137,6 +137,10 @@ def test_inspect_set_changes_the_prediction(capsys) -> None:
     _, soft, _ = run(capsys, "inspect", "demo", "--key", "60", "--json", "--set", "felt_force_1mm_n=70")
     _, hard, _ = run(capsys, "inspect", "demo", "--key", "60", "--json", "--set", "felt_force_1mm_n=280")
     assert json.loads(hard)["contact_ms"] < json.loads(soft)["contact_ms"]
+    # --set repeats: both changes take effect (a heavier hammer lengthens the harder blow).
+    _, both, _ = run(capsys, "inspect", "demo", "--key", "60", "--json", "--set", "felt_force_1mm_n=280",
+                     "--set", "hammer_mass_g=15")
+    assert json.loads(hard)["contact_ms"] < json.loads(both)["contact_ms"]
 
 
 @pytest.mark.parametrize("setting, message", [

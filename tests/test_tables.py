@@ -6,9 +6,11 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
+from voicer.errors import VoicerError
 from voicer.physics.strike import StepSettings
 from voicer.report.spectrum import levels_db, spectral_centroid_hz
 from voicer.tone import cache
+from voicer.tone.preset import parse_preset
 from voicer.tone.tables import TableSettings, build_tables, simulate_blows
 from voicer.tone.velocity import hammer_speed, layer_speeds
 
@@ -89,6 +91,7 @@ def test_harder_felt_and_faster_blows_are_shorter_and_brighter(demo) -> None:
 
 
 def test_heavier_hammer_gives_longer_contact(demo) -> None:
+    # physics.md constant-free assertion 2 (Chaigne & Askenfelt 1994): T_c ~ (M/K)^(1/(p+1)).
     key = 60
     m = demo.scale.value("hammer_mass_g", key)
     assert blow(demo, key, MF, hammer_mass_g=1.5 * m).contact_s[0] > blow(demo, key, MF).contact_s[0]
@@ -108,7 +111,8 @@ def test_contact_durations_in_published_ranges(demo) -> None:
 
 
 def test_mating_fault_changes_the_unison(demo) -> None:
-    """A string sitting 0.3 mm high meets the hammer first and takes more of the blow."""
+    """A string sitting 0.3 mm high meets the hammer first and takes more of the blow
+    (common practice: an uneven mating is a voicing fault the technician corrects)."""
     even = blow(demo, 60, MF)
     faulty = blow(demo, 60, MF, mating_2_mm=0.3)
     np.testing.assert_allclose(np.abs(even.amplitude_n[0, 0]), np.abs(even.amplitude_n[0, 1]), rtol=1e-9)
@@ -207,3 +211,23 @@ def test_engine_only_fields_do_not_invalidate_tables(demo) -> None:
     build_tables(demo, keys=[60])
     changed = demo.with_key_values(60, {"damper_rate_per_s": 40.0})
     assert build_tables(changed, keys=[60]).computed == ()
+
+
+def test_velocity_curve_and_end_speeds_shape_the_map(demo) -> None:
+    # The preset's map: log(speed) linear in ((velocity - 1) / 126)^curve between the end
+    # speeds (its definition, tone/params.py); a curve of 2 gives the midpoint velocity 64
+    # lo (hi / lo)^(1/4).
+    data = demo.to_dict()
+    data["instrument"].update({"velocity_curve": 2.0, "speed_at_velocity_1_m_s": 0.3,
+                               "speed_at_velocity_127_m_s": 8.0})
+    inst = parse_preset(data, source="curve 2").instrument
+    v = hammer_speed(np.array([1, 64, 127]), inst)
+    np.testing.assert_allclose(v, [0.3, 0.3 * (8.0 / 0.3) ** 0.25, 8.0], rtol=1e-12)
+    assert np.all(np.diff(hammer_speed(np.arange(1, 128), inst)) > 0)
+
+
+def test_a_blow_that_never_releases_names_its_key_and_speed(demo) -> None:
+    # The issue's bound: a contact that has not ended within the time given is an error
+    # naming the key and the hammer's velocity, never a hang (here a bound far too short).
+    with pytest.raises(VoicerError, match=r"key 40 \(E2\) at 2 m/s"):
+        simulate_blows(demo, [40], [2.0], max_time_s=1e-4)

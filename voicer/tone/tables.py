@@ -32,7 +32,7 @@ from numpy.typing import NDArray
 from tqdm import tqdm
 
 from ..errors import ParameterError
-from ..physics.contact import simulate_contacts
+from ..physics.contact import DEFAULT_MAX_TIME_S, simulate_contacts
 from ..physics.felt import felt_k
 from ..physics.strike import StepSettings, build_problem, coupling_weights, residual_compliance
 from ..physics.strings import DEFAULT_MAX_PARTIALS, DEFAULT_SAMPLE_RATE_HZ, bridge_force_factors
@@ -217,7 +217,8 @@ def _key_modes(preset: Preset, key: int, settings: TableSettings, una_corda: boo
 
 
 def simulate_blows(preset: Preset, keys: Iterable[int], speeds_m_s: Iterable[float], *,
-                   settings: TableSettings = TableSettings(), record: bool = False, una_corda: bool = False) -> Blows:
+                   settings: TableSettings = TableSettings(), record: bool = False, una_corda: bool = False,
+                   max_time_s: float = DEFAULT_MAX_TIME_S) -> Blows:
     """Simulate every key at every hammer speed in one batch (no cache).
 
     Parameters
@@ -236,10 +237,13 @@ def simulate_blows(preset: Preset, keys: Iterable[int], speeds_m_s: Iterable[flo
         The blow with the una corda pedal down: the hammer misses
         ``una_corda_missed_strings`` of each unison (their amplitudes are zero; a key keeps
         one string) and its felt is ``una_corda_felt_factor`` times as stiff.
+    max_time_s : float
+        Bound on a blow's contact: one that has not released by then raises
+        :class:`~voicer.errors.VoicerError` naming the key and the hammer speed.
     """
     keys = [int(k) for k in keys]
     tables, forces, dts = _simulate([(preset, k) for k in keys], speeds_m_s, settings=settings, record=record,
-                                    una_corda=una_corda)
+                                    una_corda=una_corda, max_time_s=max_time_s)
     return Blows(tables=dict(zip(keys, tables)), force_n=dict(zip(keys, forces)) if record else None,
                  dt_s=dict(zip(keys, dts)))
 
@@ -252,7 +256,7 @@ def simulate_variants(items: Sequence[tuple[Preset, int]], speeds_m_s: Iterable[
 
 
 def _simulate(items: Sequence[tuple[Preset, int]], speeds_m_s: Iterable[float], *, settings: TableSettings,
-              record: bool, una_corda: bool = False
+              record: bool, una_corda: bool = False, max_time_s: float = DEFAULT_MAX_TIME_S
               ) -> tuple[list[KeyTable], list[NDArray[np.float64]], list[NDArray[np.float64]]]:
     speeds = np.asarray(list(speeds_m_s), dtype=float)
     info = [_key_modes(p, k, settings, una_corda) for p, k in items]
@@ -286,7 +290,7 @@ def _simulate(items: Sequence[tuple[Preset, int]], speeds_m_s: Iterable[float], 
         share=np.asarray(rows["share"]), offset_m=np.asarray(rows["offset"]), omega=np.asarray(rows["omega"]),
         sigma=np.asarray(rows["sigma"]), coupling=np.asarray(rows["coupling"]), modal_mass_kg=np.asarray(rows["mass"]),
         residual_m_per_n=np.asarray(rows["residual"]), steps=settings.steps)
-    result = simulate_contacts(problem, record=record)
+    result = simulate_contacts(problem, record=record, max_time_s=max_time_s)
 
     tables: list[KeyTable] = []
     forces: list[NDArray[np.float64]] = []
