@@ -154,10 +154,30 @@ def test_inspect_set_is_validated(capsys, setting, message) -> None:
     assert code == 2 and out == "" and message in err and err.count("\n") == 1
 
 
-def test_inspect_plot(capsys, tmp_path) -> None:
+def test_inspect_plot(capsys, tmp_path, monkeypatch) -> None:
+    figure = pytest.importorskip("matplotlib.figure")
+    saved = []
+    original = figure.Figure.savefig
+
+    def keep(fig, *args, **kwargs):  # the figure as written, to look at its panels
+        saved.append(fig)
+        return original(fig, *args, **kwargs)
+
+    monkeypatch.setattr(figure.Figure, "savefig", keep)
     png = tmp_path / "c4.png"
     code, out, _ = run(capsys, "inspect", "demo", "--key", "60", "--plot", str(png))
     assert code == 0 and png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and f"plot written to {png}" in out
+    _, report, _ = run(capsys, "inspect", "demo", "--key", "60", "--json")
+    report = json.loads(report)
+    pulse, bridge, spectrum = saved[0].axes
+    # The force pulse peaks at the reported peak force; the bridge force spans 50 ms; the
+    # spectrum marks the harmonic positions n f1 beside the partials.
+    assert max(pulse.lines[0].get_ydata()) == pytest.approx(report["peak_force_n"], rel=1e-6)
+    assert max(bridge.lines[0].get_xdata()) == pytest.approx(50.0, abs=0.1)
+    f1 = report["partials"][0]["freq_hz"]
+    marks = sorted(line.get_xdata()[0] for line in spectrum.lines if line.get_linestyle() == ":" and
+                   len(line.get_xdata()))
+    assert marks[:3] == pytest.approx([f1, 2 * f1, 3 * f1], rel=1e-6)
 
 
 @pytest.mark.parametrize("argv", [["inspect", "demo"], ["inspect", "demo", "--key", "20"],
