@@ -97,7 +97,7 @@ def test_unknown_field(data, tmp_path) -> None:
 
 def test_wrong_type(data, tmp_path) -> None:
     anchor(data, 60)["strike_ratio"] = "0.125"
-    expect_error(tmp_path, data, "key 60", "field 'strike_ratio'", "expected a number")
+    expect_error(tmp_path, data, "key 60", "field 'strike_ratio'", "expected a number", "allowed: 0 < x < 0.5")
 
 
 def test_bool_is_not_a_number(data, tmp_path) -> None:

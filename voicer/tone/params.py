@@ -99,12 +99,14 @@ class Param:
         """
         if self.kind == "str":
             if not isinstance(value, str):
-                raise ParameterError(f"expected text, got {type(value).__name__} {value!r}")
+                allowed = f"; allowed: {self.range_text()}" if self.choices else ""
+                raise ParameterError(f"expected text, got {type(value).__name__} {value!r}{allowed}")
             if self.choices and value not in self.choices:
                 raise ParameterError(f"{value!r} is not allowed; allowed: {self.range_text()}")
             return value
         if isinstance(value, bool) or not isinstance(value, (int, float)):
-            raise ParameterError(f"expected a number ({self.kind}), got {type(value).__name__} {value!r}")
+            raise ParameterError(f"expected a number ({self.kind}), got {type(value).__name__} {value!r}; "
+                                 f"allowed: {self.range_text()}")
         if self.kind == "int" and not isinstance(value, int):
             raise ParameterError(f"expected a whole number, got {value!r}; allowed: {self.range_text()}")
         if self.kind == "float":
