@@ -29,7 +29,7 @@ from ..tone.tables import TableSettings
 from ..tone.velocity import DYNAMIC_VELOCITY, hammer_speed  # markings in file names
 from .felt_fit import FeltFit, StrikeLevels, fit_felt
 from .losses import LossFit, fit_losses
-from .note import NoteAnalysis, RecordingAnalysis, has_level
+from .note import MIN_STRIKE_PARTIALS, NoteAnalysis, RecordingAnalysis, has_level
 from .strike import fit_strike_ratio
 from .preset_out import KeyFit, fitted_preset
 
@@ -81,12 +81,20 @@ def _valid_partials(key: int, measured: dict[str, Any], remarks: list[str]) -> d
     return {k: ([v[j] for j in keep] if k in arrays else v) for k, v in measured.items()}
 
 
-def _body_db(base: Preset) -> Callable[[float], float] | None:
-    """The base preset's soundboard gain in dB at a frequency (None without a body)."""
-    if base.instrument["body"] != "modal":
-        return None
-    modes = body_modes(BodyModel.from_fields(base.instrument))
-    return lambda f: float(20.0 * np.log10(np.abs(modal_sum(np.array([f]), modes)[0])))
+def _levelled(base: Preset, notes: Sequence[NoteAnalysis]) -> list[tuple[list[Any], np.ndarray]]:
+    """Per note, its partials with a level and those levels as the model sees them: the
+    model's levels are the strings' force on the bridge, a recording hears it through the
+    soundboard, so where the base preset describes its board (``body = "modal"``) its
+    gain is taken out (a recording of an unknown board: the levels as heard)."""
+    modes = body_modes(BodyModel.from_fields(base.instrument)) if base.instrument["body"] == "modal" else None
+    out = []
+    for n in notes:
+        parts = [p for p in n.partials if has_level(p)]
+        level = np.array([p.level_db for p in parts])
+        if modes is not None and parts:
+            level = level - 20.0 * np.log10(np.abs(modal_sum(np.array([p.freq_hz for p in parts]), modes)))
+        out.append((parts, level))
+    return out
 
 
 def fit_key(base: Preset, key: int, notes: Sequence[NoteAnalysis], *, calibration_db: float | None = None,
@@ -98,20 +106,13 @@ def fit_key(base: Preset, key: int, notes: Sequence[NoteAnalysis], *, calibratio
     cents = float(np.mean([n.cents_from_et for n in usable]))
     b, b_unc = _weighted([n.b for n in usable], [n.b_uncertainty for n in usable])
     remarks: list[str] = []
-    # The model's levels are the strings' force on the bridge; a recording hears it through
-    # the soundboard. Where the base preset describes its board, the fits see the recorded
-    # levels with the board's gain taken out (a recording of an unknown board: as heard).
-    body = _body_db(base)
-    if body is None:
+    levelled = _levelled(base, usable)
+    if base.instrument["body"] != "modal":  # each note's own strike fit saw these levels
         strikes = [n.strike for n in usable if n.strike is not None and n.strike.quality != "poor"]
     else:
-        strikes = []
-        for n in usable:
-            parts = [p for p in n.partials if has_level(p)]
-            if len(parts) >= 6:
-                fit = fit_strike_ratio([p.n for p in parts], [p.level_db - body(p.freq_hz) for p in parts])
-                if fit.quality != "poor":
-                    strikes.append(fit)
+        fits = [fit_strike_ratio([p.n for p in parts], level) for parts, level in levelled
+                if len(parts) >= MIN_STRIKE_PARTIALS]
+        strikes = [f for f in fits if f.quality != "poor"]
     beta = beta_unc = None
     beta_quality = "poor"
     if strikes:
@@ -121,12 +122,10 @@ def fit_key(base: Preset, key: int, notes: Sequence[NoteAnalysis], *, calibratio
         remarks.append("strike ratio not fitted (no clear pattern of weak partials): kept from the base")
     felt_preset = base.with_key_values(key, {"strike_ratio": beta}) if beta is not None else base
     levels = []
-    for n in usable:
+    for n, (parts, level) in zip(usable, levelled):
         mark = dynamic_of(n.path)
         prior = float(hammer_speed(DYNAMIC_VELOCITY[mark], base.instrument)) if mark else None
-        parts = [p for p in n.partials if has_level(p)]
-        levels.append(StrikeLevels(n=np.array([p.n for p in parts], dtype=np.int64),
-                                   level_db=np.array([p.level_db - (body(p.freq_hz) if body else 0.0) for p in parts]),
+        levels.append(StrikeLevels(n=np.array([p.n for p in parts], dtype=np.int64), level_db=level,
                                    take=str(Path(n.path).parent), speed_prior_m_s=prior))
     felt: FeltFit | None = None
     try:

@@ -37,6 +37,8 @@ MAX_LEVEL_UNCERTAINTY_DB = 6.0
 #: A note's analysis window ends this long after its onset at the latest (long enough for
 #: the aftersound of the bass, short enough to keep the analysis fast).
 MAX_NOTE_S = 8.0
+#: Fewest partials with a level that the strike ratio is fitted from.
+MIN_STRIKE_PARTIALS = 6
 
 
 @dataclass(frozen=True)
@@ -128,7 +130,7 @@ def analyze_note(recording: Recording, strike: Strike, *, exclude_hz: tuple[floa
     strike_fit = None
     # Levels that the envelope does not tell are left out (not guessed).
     levelled = [p for p in partials if has_level(p)]
-    if len(levelled) >= 6:
+    if len(levelled) >= MIN_STRIKE_PARTIALS:
         strike_fit = fit_strike_ratio([p.n for p in levelled], [p.level_db for p in levelled])
     else:
         notes.append(f"{len(levelled)} partials with a level: too few for the strike ratio")

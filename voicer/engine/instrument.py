@@ -128,50 +128,45 @@ class Instrument:
         if answers is None or not len(answers.freq_hz) or answers.coupling.shape[0] != len(table.freq_hz):
             return None
         c = answers.coupling
-        ext = KeyTable(key=table.key, speeds_m_s=table.speeds_m_s,
-                       freq_hz=np.concatenate([table.freq_hz, answers.freq_hz]),
-                       sigma_per_s=np.concatenate([table.sigma_per_s, answers.sigma_per_s]),
-                       amplitude_n=np.zeros((1, 1, len(table.freq_hz) + len(answers.freq_hz)), dtype=complex),
-                       contact_s=table.contact_s, peak_force_n=table.peak_force_n, rebound_m_s=table.rebound_m_s,
-                       contacts=table.contacts)
+        freq = np.concatenate([table.freq_hz, answers.freq_hz])
         scale = self.preset.scale
         own = np.full(len(table.freq_hz), float(scale.value("damper_rate_per_s", table.key)))
         theirs = np.array([float(scale.value("damper_rate_per_s", int(k))) if k <= self.last_damped_key else 0.0
                            for k in answers.keys])
-        levels = self._levels(ext, like, damper=np.concatenate([own, theirs]))
+        levels = self._levels(freq, np.concatenate([table.sigma_per_s, answers.sigma_per_s]),
+                              np.concatenate([own, theirs]), like)
 
         def extend(rows: NDArray[np.complex128]) -> NDArray[np.complex128]:
             return np.concatenate([rows * (1.0 + c.sum(axis=1)), -(rows @ c)], axis=1)
 
-        return KeyData(key=table.key, freq_hz=ext.freq_hz, damped=data.damped, levels=levels,
+        return KeyData(key=table.key, freq_hz=freq, damped=data.damped, levels=levels,
                        amplitude=extend(data.amplitude),
                        una_corda_gain=np.concatenate([data.una_corda_gain, np.ones(len(answers.freq_hz))]),
                        una_corda_amplitude=(extend(data.una_corda_amplitude) if data.una_corda_amplitude is not None
                                             else None))
 
-    def _levels(self, table: KeyTable, like: KeyData | None,
-                damper: NDArray[np.float64] | None = None) -> tuple[PartialTables, ...]:
-        """Damper and fade tables of a table's entries (``like``'s when they are the same);
-        ``damper``: each entry's damper rate (default the key's)."""
-        free = (-table.sigma_per_s + 2j * np.pi * table.freq_hz) / self.sample_rate
+    def _levels(self, freq_hz: NDArray[np.float64], sigma_per_s: NDArray[np.float64],
+                damper_per_s: NDArray[np.float64] | float, like: KeyData | None) -> tuple[PartialTables, ...]:
+        """Damper and fade tables of entries with these frequencies, decay rates and
+        damper rates (``like``'s when they are the same)."""
+        free = (-sigma_per_s + 2j * np.pi * freq_hz) / self.sample_rate
         if like is not None and np.array_equal(like.levels[0].lam, free):
             return like.levels
-        if damper is None:
-            damper = np.full(len(table.freq_hz), float(self.preset.scale.value("damper_rate_per_s", table.key)))
         built = []
         for level in range(DAMPER_LEVELS + 1):
-            sigma = table.sigma_per_s + damper * level / DAMPER_LEVELS
-            built.append(partial_tables((-sigma + 2j * np.pi * table.freq_hz) / self.sample_rate,
+            sigma = sigma_per_s + damper_per_s * level / DAMPER_LEVELS
+            built.append(partial_tables((-sigma + 2j * np.pi * freq_hz) / self.sample_rate,
                                         split=self.split, max_block=self.max_block))
-        fade_sigma = table.sigma_per_s + T60_LN / FADE_S
-        built.append(partial_tables((-fade_sigma + 2j * np.pi * table.freq_hz) / self.sample_rate,
+        fade_sigma = sigma_per_s + T60_LN / FADE_S
+        built.append(partial_tables((-fade_sigma + 2j * np.pi * freq_hz) / self.sample_rate,
                                     split=self.split, max_block=self.max_block))
         return tuple(built)
 
     def _key_data(self, table: KeyTable, *, una: KeyTable | None, like: KeyData | None) -> KeyData:
         key = table.key
         inst = self.preset.instrument
-        levels = self._levels(table, like)
+        damper = float(self.preset.scale.value("damper_rate_per_s", key))
+        levels = self._levels(table.freq_hz, table.sigma_per_s, damper, like)
         amp = np.zeros((128, len(table.freq_hz)), dtype=np.complex128)
         amp[1:] = table.at_speeds(self._speeds)
         octaves = np.log2(table.freq_hz / table.freq_hz[0])

@@ -100,7 +100,7 @@ def couple_unison(table: KeyTable, preset: Preset) -> KeyTable:
     key = table.key
     total = table.amplitude_n.sum(axis=1, keepdims=True)
     if not is_coupled(preset, key):
-        return KeyTable(**{**table.to_arrays(), "key": key, "amplitude_n": total})
+        return replace(table, amplitude_n=total)
     v = _values(preset, key)
     strings = table.amplitude_n.shape[1]
     polarizations = int(preset.instrument["polarizations"])
@@ -115,9 +115,9 @@ def couple_unison(table: KeyTable, preset: Preset) -> KeyTable:
     eta = r * sigma
     omega = 2.0 * np.pi * table.freq_hz
     tune = 2.0 ** (np.array([v[f"mistune_{s}_cents"] for s in range(1, strings + 1)]) / 1200.0)
-    own = omega[:, None] * tune[None, :] + 1j * ((1.0 - r) * sigma)[:, None]  # (N, S)
-    own_h = (omega[:, None] * tune[None, :] * 2.0 ** (v["polarization_split_cents"] / 1200.0)
-             + 1j * ((1.0 - r) * sigma)[:, None])
+    tuned, loss = omega[:, None] * tune[None, :], 1j * ((1.0 - r) * sigma)[:, None]  # (N, S), (N, 1)
+    own = tuned + loss
+    own_h = tuned * 2.0 ** (v["polarization_split_cents"] / 1200.0) + loss
     z = eta * (v["bridge_reactance_ratio"] + 1j)
     matrix = unison_matrix(own, z, polarizations=polarizations, horizontal=v["horizontal_coupling"],
                            cross=v["polarization_coupling"], own_horizontal=own_h)
@@ -125,10 +125,8 @@ def couple_unison(table: KeyTable, preset: Preset) -> KeyTable:
     excitation = table.amplitude_n.transpose(2, 0, 1)  # (N, L, S)
     amp = heard_amplitudes(vec, excitation, heard=strings)  # (N, L, M)
     n, layers, m = amp.shape
-    return KeyTable(key=key, speeds_m_s=table.speeds_m_s, freq_hz=(lam.real / (2.0 * np.pi)).reshape(n * m),
-                    sigma_per_s=lam.imag.reshape(n * m), amplitude_n=amp.transpose(1, 0, 2).reshape(layers, 1, n * m),
-                    contact_s=table.contact_s, peak_force_n=table.peak_force_n, rebound_m_s=table.rebound_m_s,
-                    contacts=table.contacts)
+    return replace(table, freq_hz=(lam.real / (2.0 * np.pi)).reshape(n * m), sigma_per_s=lam.imag.reshape(n * m),
+                   amplitude_n=amp.transpose(1, 0, 2).reshape(layers, 1, n * m))
 
 
 def couple_tables(tables: ModalTables, una_corda: ModalTables | None = None) -> ModalTables:
