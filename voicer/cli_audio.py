@@ -15,7 +15,7 @@ from pathlib import Path
 
 from threadpoolctl import threadpool_limits
 
-from .engine.host import discover, format_plugins
+from .engine.host import Effect, discover, format_plugins, load_plugin
 from .engine.keyboard import HELP, KNOB_HELP, KeyboardPlayer, raw_terminal
 from .engine.knob_state import keys_text, parse_key_spec
 from .engine.knobs import KnobMap, load_knobs
@@ -23,7 +23,6 @@ from .engine.live import LiveInput
 from .engine.live_knobs import LiveKnobs
 from .engine.offline import RenderResult, render_events
 from .engine.renderer import Renderer
-from .engine.room import RoomEffect
 from .engine.rebuild import LIVE_MODELS
 from .engine.session import prepare_states, table_settings
 from .errors import VoicerError
@@ -44,11 +43,11 @@ def _tty() -> bool:
     return sys.stderr.isatty()
 
 
-def _effects(room_s: float | None, mix: float, *, sample_rate: int, block: int) -> list[RoomEffect]:
-    """The effects the options ask for (--room), prepared."""
+def _effects(room_s: float | None, mix: float, *, sample_rate: int, block: int) -> list[Effect]:
+    """The effects the options ask for (--room: the ``room`` effect plugin), prepared."""
     if room_s is None:
         return []
-    room = RoomEffect(rt60_s=room_s, wet_mix=mix)
+    room = load_plugin("effects", "room")(rt60_s=room_s, wet_mix=mix)
     room.prepare(sample_rate, block, 1)
     return [room]
 
