@@ -218,7 +218,8 @@ def build_parser() -> argparse.ArgumentParser:
         description="Render a MIDI file through the predicted piano (with a voicing plan: the voiced piano).",
         examples=["voicer render demo song.mid -o song.wav",
                   "voicer render demo song.mid -o song-B.flac --voicing presets/voicings/kestrel-190-mellow.toml"
-                  " --stats-json stats.json"])
+                  " --stats-json stats.json",
+                  "voicer render demo song.mid -o song-room.wav --room 1.5 --room-mix 0.3"])
     _add_preset(render)
     render.add_argument("midi", metavar="SONG.mid", help="standard MIDI file")
     render.add_argument("-o", "--output", required=True, metavar="OUT.wav", help="output file (.wav or .flac)")
@@ -236,7 +237,8 @@ def build_parser() -> argparse.ArgumentParser:
                     "voiced preset; flip between them with the space bar, --ab-cc or a program change.",
         examples=["voicer play demo",
                   "voicer play demo --voicing presets/voicings/kestrel-190-mellow.toml --midi-in 1 --ab-cc 80",
-                  "voicer play demo --midi-file presets/midi/demo-passage.mid --device pulse --block 128"])
+                  "voicer play demo --midi-file presets/midi/demo-passage.mid --device pulse --block 128",
+                  "voicer play demo --room 1.2"])
     _add_preset(play)
     play.add_argument("--voicing", metavar="PLAN.toml", help="voicing plan for state B")
     play.add_argument("--midi-in", metavar="PORT", help="MIDI input by name, part of a name, or number")
