@@ -13,6 +13,8 @@ import tomli_w
 
 from voicer.errors import PresetError
 from voicer.io.atomic import backup_path
+from voicer.physics.constants import STEEL_DENSITY_KG_M3, STEEL_YOUNGS_MODULUS_PA
+from voicer.physics.tuning import tuned_hz
 from voicer.tone.params import KEY_PARAMS
 from voicer.tone.preset import load_preset, preset_to_toml, save_preset
 
@@ -140,6 +142,16 @@ def test_nonsense_b_is_rejected(data, tmp_path) -> None:
     # A 2.4 mm wire on the 5 cm C8 string: a digit slip, far too stiff to be a piano.
     data["override"] = {"108": {"core_diameter_mm": 2.4}}
     expect_error(tmp_path, data, "key 108", "field 'core_diameter_mm'")
+
+
+def test_too_stiff_string_states_the_allowed_diameter(demo, data, tmp_path) -> None:
+    # A 2.5 mm wire over 3 cm at C8 cannot sound at its pitch at any tension. The largest
+    # core for B <= 0.1 there, from Fletcher's B = pi^3 E d^4 / (64 T L^2) with
+    # T = 4 mu L^2 f0^2 (plain wire): d = 8 L^2 f1 sqrt(B rho / ((1 + B) E)) / pi.
+    data["override"] = {"108": {"core_diameter_mm": 2.5, "speaking_length_m": 0.03}}
+    f1 = float(tuned_hz(108, demo.scale.value("stretch_cents", 108)))
+    d_max_mm = 8 * 0.03**2 * f1 * np.sqrt(0.1 * STEEL_DENSITY_KG_M3 / (1.1 * STEEL_YOUNGS_MODULUS_PA)) / np.pi * 1e3
+    expect_error(tmp_path, data, "key 108", "field 'core_diameter_mm'", "too stiff", f"up to {d_max_mm:.3g} mm")
 
 
 def test_b_range_message(data, tmp_path) -> None:

@@ -268,8 +268,13 @@ class Scale:
             f0, mu, tension, b = derive_strings(f1, length, d, wind, end=end)
         except TooStiffError as exc:
             i = exc.index
+            # The allowed range: the thickest core that keeps B within its limit here.
+            winding = {"winding_diameter_m": outer[i]} if np.isfinite(outer[i]) else {"added_mass_kg_per_m": wind[i]}
+            d_max = core_diameter_for_b(B_LIMITS[1], float(f1[i]), float(length[i]), end=end,
+                                        range_m=(1e-6, d[i]), **winding)
             raise PresetError(
-                f"a {d[i] * 1e3:g} mm core over {length[i]:g} m is too stiff to sound at {f1[i]:.2f} Hz",
+                f"a {d[i] * 1e3:g} mm core over {length[i]:g} m is too stiff to sound at {f1[i]:.2f} Hz; "
+                f"allowed here: up to {d_max * 1e3:.3g} mm (B <= {B_LIMITS[1]:g}), or a longer speaking_length_m",
                 key=int(keys[i]), field="core_diameter_mm") from None
 
         lo, hi = B_LIMITS
