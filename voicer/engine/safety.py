@@ -26,6 +26,8 @@ from numpy.typing import NDArray
 from ..errors import ParameterError
 
 DEFAULT_CEILING_DBFS = -1.0
+#: Arguments of tanh above this give exactly 1.0 in float64.
+_TANH_SATURATED = 40.0
 
 
 class SafetyStage:
@@ -79,6 +81,10 @@ class SafetyStage:
             self.limited += int(np.count_nonzero(over))
             span = self.ceiling - self.knee
             np.subtract(mag, self.knee, out=mag)
+            # tanh is 1.0 in float64 from about 19.1 on: capping there first keeps a
+            # huge sample (up to float64's maximum) from overflowing the division,
+            # whose warning would be I/O inside the audio callback.
+            np.minimum(mag, _TANH_SATURATED * span, out=mag)
             np.divide(mag, span, out=mag)
             np.tanh(mag, out=mag)
             np.multiply(mag, span, out=mag)
