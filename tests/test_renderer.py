@@ -285,18 +285,52 @@ def test_voice_limit_steals_released_voices_first(tables) -> None:
 
 
 def test_ab_flip_crossfades_to_the_other_state(tables, tables_b) -> None:
+    """A flip inside a block starts at its own sample (not at the next block) and mixes
+    a + w (b - a) with the renderer's linear law w_i = (i + 1) / fade over ``fade``
+    samples (renderer.py, _fill_ramp), a and b rendered separately in each state."""
     events = [(0, on(60)), (0, on(67))]
-    flip_at = 10_000
+    flip_at = 10_100  # inside a 256-sample block (10_100 = 39 * 256 + 116)
     ab = make(tables, tables_b)
     fade = ab.crossfade
+    assert fade == round(0.02 * FS)  # crossfade_s default, 20 ms
     y = render(ab, events + [(flip_at, "flip")], 20_000)
     only_a = render(make(tables), events, 20_000)
     only_b = render(make(tables_b), events, 20_000)
-    tol = 2e-5 * np.abs(only_a).max()
+    # Both states render the same blocks as when alone; what is left is the float32
+    # rounding of y, a and b (IEEE 754 binary32: half an ulp each, an ulp <= 2**-23 of
+    # the peak): two ulps of the peak.
+    tol = 2.0**-22 * np.abs(only_a).max()
+    assert not np.allclose(only_a, only_b, atol=1000 * tol)  # the states really differ
     np.testing.assert_allclose(y[:flip_at], only_a[:flip_at], atol=tol)
+    a, b = only_a[flip_at:flip_at + fade], only_b[flip_at:flip_at + fade]
+    w = np.arange(1, fade + 1) / fade
+    np.testing.assert_allclose(y[flip_at:flip_at + fade], a + w * (b - a), rtol=0, atol=tol)
     np.testing.assert_allclose(y[flip_at + fade:], only_b[flip_at + fade:], atol=tol)
-    assert not np.allclose(only_a, only_b, atol=100 * tol)  # the states really differ
+    # The check tells the law apart from one sample later (w = i / fade) and from a cut.
+    late = np.arange(fade) / fade
+    assert np.abs(y[flip_at:flip_at + fade] - (a + late * (b - a))).max() > 20 * tol
+    assert np.abs(y[flip_at:flip_at + fade] - b).max() > 1000 * tol
     assert ab.state_name == "B" and ab.stats.flips == 1
+
+
+def test_ab_flip_between_blocks_lands_in_the_next_block(tables, tables_b) -> None:
+    """flip() called between callbacks (the keyboard's space bar, through LiveInput) starts
+    the crossfade at the first sample of the next block: within one block."""
+    events = [(0, on(60)), (0, on(67))]
+    ab = make(tables, tables_b)
+    first = render(ab, events, 256 * 40)
+    ab.flip()
+    rest = render(ab, [], 256 * 10)
+    both = np.concatenate([first, rest])
+    only_a = render(make(tables), events, 256 * 50)
+    only_b = render(make(tables_b), events, 256 * 50)
+    tol = 2.0**-22 * np.abs(only_a).max()  # as above: float32 rounding
+    at, fade = 256 * 40, ab.crossfade
+    np.testing.assert_allclose(both[:at], only_a[:at], atol=tol)
+    w = np.arange(1, fade + 1) / fade
+    a, b = only_a[at:at + fade], only_b[at:at + fade]
+    np.testing.assert_allclose(both[at:at + fade], a + w * (b - a), rtol=0, atol=tol)
+    np.testing.assert_allclose(both[at + fade:], only_b[at + fade:], atol=tol)
 
 
 def test_ab_by_controller_and_program_change(tables, tables_b) -> None:
