@@ -249,6 +249,46 @@ def test_restrike_adds_to_the_vibrating_strings(tables) -> None:
     np.testing.assert_allclose(both, first + second, atol=2e-5 * np.abs(both).max())
 
 
+def test_partials_are_culled_below_minus_100_dbfs_and_not_before(tables) -> None:
+    """Issue 4 item 1: partials below -100 dB re full scale are dropped (the default).
+
+    A held C4 rings for 3 s. At every housekeeping point the bank keeps exactly the
+    partials whose level, predicted from the modal table (velocity map, decay rate,
+    master gain), is at or above -100 dBFS there: the count falls as they decay, the
+    weakest one kept is above the threshold and none is dropped between the points."""
+    from voicer.engine.defaults import DEFAULT_CULL_DBFS
+    from voicer.engine.renderer import HOUSEKEEPING_FRAMES as HK
+    from voicer.tone.velocity import hammer_speed
+
+    assert DEFAULT_CULL_DBFS == -100.0
+    key, vel = 60, 100
+    r = make(tables)  # the renderer's default cull
+    table = tables[key]
+    start = np.abs(table.at_speed(float(hammer_speed(vel, tables.preset.instrument)))) * 10 ** (GAIN_DB / 20)
+    threshold = 10 ** (-100 / 20)
+    out = np.zeros((2, 256), dtype=np.float32)
+    r.process(out, [(0, on(key, vel))])
+    bank = r.banks[0]
+    counts, weakest_kept_db, loudest_dropped_db = [], [], []
+    for b in range(1, 3 * FS // 256):
+        before = bank.count
+        r.process(out, [])
+        if b * 256 % HK:
+            assert bank.count == before, f"partials dropped between housekeeping points at block {b}"
+            continue
+        level = start * np.exp(-table.sigma_per_s * (b * 256) / FS)  # at the housekeeping point
+        kept = set(bank.index[: bank.count].tolist())
+        clear = np.abs(level / threshold - 1) > 1e-9  # leave out a partial right at the threshold
+        assert {n for n in kept if clear[n]} == set(np.flatnonzero(clear & (level >= threshold)).tolist()), b
+        counts.append(bank.count)
+        weakest_kept_db.append(20 * np.log10(min(level[n] for n in kept)) if kept else np.inf)
+        dropped = [level[n] for n in range(len(level)) if n not in kept]
+        loudest_dropped_db.append(20 * np.log10(max(dropped)) if dropped else -np.inf)
+    assert counts[0] > 2 * counts[-1] > 0  # many partials dropped as the note decays
+    assert all(a >= b for a, b in zip(counts, counts[1:]))
+    assert min(weakest_kept_db) >= -100.0 and max(loudest_dropped_db) < -100.0
+
+
 def test_all_notes_off_and_stop_clear_stuck_notes(tables) -> None:
     stuck = [(0, on(60)), (0, on(64)), (0, on(67))]
     ringing = render(make(tables), stuck, 2 * FS)
