@@ -35,7 +35,11 @@ VELOCITY = 80
 TAKE = [(40, 0.30, 2.30), (55, 2.80, 4.80), (67, 5.30, 7.30)]
 #: One held note per round-trip key: struck at 0.25 s, released at the very end.
 HOLD_ONSET_S, HOLD_S = 0.25, 4.0
-ROUND_TRIP_KEYS = [36, 48]  # bass and tenor: many partials beyond the strike notch
+# Bass and tenor: many partials beyond the strike notch. On the demo's tenor the strike fit
+# is not sure everywhere: at C3 and D3 a string reaction without a notch explains the
+# levels nearly as well (a rival minimum), so it answers "poor" and keeps the base's ratio
+# there; E3 is a tenor key where it answers.
+ROUND_TRIP_KEYS = [36, 52]
 
 
 def run(capsys, *argv: str | Path) -> tuple[int, str, str]:
@@ -335,9 +339,9 @@ def test_analysis_json_never_writes_nan_or_infinity() -> None:
 def test_analyze_plot_writes_a_png(capsys, tmp_path, held_wavs) -> None:
     pytest.importorskip("matplotlib", reason="plots need the 'plots' extra (matplotlib)")
     png = tmp_path / "c3.png"
-    code, out, err = run(capsys, "analyze", held_wavs[48], "--plot", png)
+    code, out, err = run(capsys, "analyze", held_wavs[52], "--plot", png)
     assert code == 0, err
-    assert "C3 (key 48)" in out and f"wrote {png}" in err
+    assert "E3 (key 52)" in out and f"wrote {png}" in err
     data = png.read_bytes()
     # PNG signature, then the IHDR chunk with width and height (PNG specification,
     # ISO/IEC 15948, sections 5.2 and 11.2.2; section numbers from memory)

@@ -57,7 +57,11 @@ def test_decay_rates_given_per_partial() -> None:
 
 def test_key_modes_from_the_scale(demo) -> None:
     m = demo.scale.modes(21, sample_rate_hz=48_000.0)
-    assert 200 < len(m.n) < 256 and m.freq_hz[-1] < NYQUIST_FRACTION * 48_000.0  # band-limited, not capped
+    # Band-limited, not capped: every partial of Fletcher's f_n = n f0 sqrt(1 + B n^2) below
+    # the limit, and no more (A0 has about 200 of them).
+    n = np.arange(1, 1000)
+    below = n[n * m.f0_hz * np.sqrt(1 + m.b * n**2) < NYQUIST_FRACTION * 48_000.0]
+    assert 150 < len(m.n) < 256 and len(m.n) == below[-1]
     assert m.freq_hz[0] == pytest.approx(demo.scale.f1_hz[0], rel=1e-12)
     shapes = m.shapes([0.118])
     np.testing.assert_allclose(shapes[:, 0], np.sin(m.n * np.pi * 0.118), rtol=1e-12)

@@ -70,7 +70,8 @@ What each maps to, on each listed key (values as the preset resolves them):
   total felt force of blows at 1 and 5 m/s (``simulate_blows``), as compression
   ``(F / F1)^(1/p)``: 0.78 and 1.98 mm at A0, 0.64 / 1.55 mm at E1 and 0.70 / 1.73 mm at
   F1 (where pairs of strings begin: a pair yields less to the hammer than one string),
-  0.62 / 1.5 mm at A1, 0.40 / 0.87 mm at A2, 0.36 / 0.76 mm at C4, 0.38 / 0.73 mm at C6,
+  0.62 / 1.5 mm at A1, 0.40 / 0.87 mm at A2, 0.39 / 0.84 mm at A#2 and 0.36 / 0.79 mm at
+  D#3 (the long first plain strings), 0.36 / 0.76 mm at C4, 0.38 / 0.73 mm at C6,
   0.40 / 0.84 mm at C8 (within 2.5 % of the simulation at every key). They are fixed, so
   that an operation does not depend on the felt it changes (and its inverse is exact in
   arithmetic); on another piano they stand for where its pp and ff blows load the felt.
@@ -166,8 +167,8 @@ SPILL: dict[str, float] = {"crown": 0.5, "shoulders": 0.2}
 #: instrument (simulated, see the module notes); log-linear in the key between them.
 COMPRESSION_ANCHORS_MM: tuple[tuple[int, float, float], ...] = (
     (21, 0.78, 1.98), (28, 0.64, 1.55), (29, 0.70, 1.73), (33, 0.62, 1.50), (39, 0.51, 1.18),
-    (45, 0.40, 0.87), (52, 0.37, 0.79), (60, 0.36, 0.76), (72, 0.37, 0.72), (84, 0.38, 0.73),
-    (96, 0.39, 0.77), (108, 0.40, 0.84),
+    (45, 0.40, 0.87), (46, 0.39, 0.84), (51, 0.36, 0.787), (56, 0.36, 0.77), (60, 0.36, 0.76),
+    (72, 0.37, 0.72), (84, 0.38, 0.73), (96, 0.39, 0.77), (108, 0.40, 0.84),
 )
 
 _OPS = ("factor", "add", "value")
