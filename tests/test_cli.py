@@ -3,8 +3,10 @@
 from __future__ import annotations
 
 import json
+import re
 import subprocess
 import sys
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -35,6 +37,19 @@ def test_scale_json_schema(capsys, demo) -> None:
     np.testing.assert_allclose([k["tension_n"] for k in data["keys"]], s.tension_n, rtol=1e-15)
     np.testing.assert_allclose([k["f0_hz"] for k in data["keys"]], s.f1_hz, rtol=1e-12)
     assert data["keys"][69 - 21]["f0_hz"] == pytest.approx(440.0, abs=1e-9)
+
+
+def test_scale_json_matches_the_readme(capsys) -> None:
+    # The README documents the schema: its table lists exactly the fields of each key, and
+    # its sentence the top-level ones.
+    readme = (Path(__file__).resolve().parent.parent / "README.md").read_text()
+    section = readme.split("### `voicer scale --json`", 1)[1].split("\n### ", 1)[0]
+    documented = set(re.findall(r"^\| `(\w+)` \|", section, flags=re.M))
+    top, table = section.split("| field |", 1)
+    code, out, _ = run(capsys, "scale", "demo", "--json")
+    data = json.loads(out)
+    assert code == 0 and documented == set(data["keys"][0]) and JSON_KEY_FIELDS <= documented
+    assert set(re.findall(r"`(\w+)`", top)) >= set(data)
 
 
 def test_scale_json_partials_option(capsys) -> None:
