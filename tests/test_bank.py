@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from voicer.engine.bank import OscillatorBank, partial_tables
+from voicer.engine.bank import DEFAULT_CHUNK, OscillatorBank, partial_tables
 from voicer.errors import ParameterError
 
 FS = 48_000.0
@@ -72,14 +72,24 @@ def test_no_drift_over_sixty_seconds(rng) -> None:
     assert err_last < 3 * err_first + 1e-7 * scale  # and no growth
 
 
-def test_many_partials_summed_in_chunks(rng) -> None:
-    lam, amp = random_partials(rng, 20_000)
-    bank = OscillatorBank(20_000, max_block=256, chunk=4096)
+def exact_sum(lam, amp, frames, piece=4000):
+    """:func:`exact` over many partials, a few thousand at a time (bounded memory)."""
+    return sum(exact(lam[i:i + piece], amp[i:i + piece], 0, frames) for i in range(0, len(lam), piece))
+
+
+@pytest.mark.parametrize("chunk", [256, 4096, DEFAULT_CHUNK, 60_000])
+def test_many_partials_summed_in_chunks(rng, chunk) -> None:
+    """60,000 partials in chunks of any size, the last one ragged, against the float64 sum:
+    the error stays at float32 resolution of the rms (measured with OpenBLAS: 4e-7 rms and
+    2e-6 peak, whatever the chunk)."""
+    lam, amp = random_partials(rng, 60_000)
+    bank = OscillatorBank(60_000, max_block=256, chunk=chunk)
     bank.add(lam, amp, owner=0)
     got = render(bank, 512, 256)
-    ref = exact(lam, amp, 0, 512)
+    ref = exact_sum(lam, amp, 512)
     rms = np.sqrt(np.mean(ref**2))
-    assert np.max(np.abs(got - ref)) < 1e-5 * rms * 10
+    assert np.sqrt(np.mean((got - ref) ** 2)) < 2e-6 * rms
+    assert np.max(np.abs(got - ref)) < 1e-5 * rms
 
 
 def test_cull_removes_only_quiet_partials(rng) -> None:

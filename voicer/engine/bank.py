@@ -14,7 +14,7 @@ the partial only and are computed when it is added. The master state ``c_k`` is
 complex128 and advanced once per block by ``p_k^frames`` (a product of stored powers
 ``p_k^(2^b)``, so a segment of any length costs a few multiplies), so float32 rounding never
 accumulates: it is confined to one block (drift bounds in ``tests/test_bank.py``). Long
-float32 sums lose accuracy, so partials are summed in chunks and the chunks in float64.
+float32 sums can lose accuracy, so partials are summed in chunks and the chunks in float64.
 
 Partials live in slots ``0..count-1`` of preallocated arrays; a partial that has decayed
 below the threshold is removed by moving the last one into its slot (order does not
@@ -33,10 +33,16 @@ from numpy.typing import NDArray
 
 from ..errors import ParameterError
 
-#: Samples per row of the block matrix (I): 16 rows of 16 make a 256-sample block.
-DEFAULT_SPLIT = 32
-#: Partials summed in one float32 product before the sum goes to float64.
-DEFAULT_CHUNK = 4096
+#: Samples per row of the block matrix (I): 16 rows of 16 make a 256-sample block. The
+#: table [p^i] costs 2 I floats per partial and the rows 2 J, so memory traffic is least
+#: near I = sqrt(block); measured on this machine (scripts/bench_engine.py), 16 beat 8, 32
+#: and 64 at blocks of both 128 and 256.
+DEFAULT_SPLIT = 16
+#: Partials per float32 product; the chunks are summed in float64. With OpenBLAS the error
+#: of the sum does not grow with the chunk (about 4e-7 of the rms from 256 to 60,000
+#: partials per chunk, tests/test_bank.py), so the chunk bounds the scratch memory and the
+#: calls per block; another BLAS may sum less carefully.
+DEFAULT_CHUNK = 16384
 _MOVE_CHUNK = 8192  # slots moved per step when compacting (bounds the scratch memory)
 
 
@@ -51,7 +57,7 @@ class PartialTables:
     lam: NDArray[np.complex128]  # (n,) log of the per-sample factor
     table: NDArray[np.float32]  # (n, 2, split) [Re p^i, -Im p^i]
     steps: NDArray[np.complex64]  # (rows, n) p^(I j)
-    powers: NDArray[np.complex128]  # (n, bits) p^(2^b), b = 0..bits-1
+    powers: NDArray[np.complex128]  # (bits, n) p^(2^b), b = 0..bits-1
 
 
 def partial_tables(lam: NDArray[np.complex128], *, split: int, max_block: int) -> PartialTables:
@@ -63,7 +69,7 @@ def partial_tables(lam: NDArray[np.complex128], *, split: int, max_block: int) -
     table[:, 0] = tab.real
     table[:, 1] = -tab.imag
     steps = np.exp(np.outer(np.arange(rows) * split, lam)).astype(np.complex64)
-    powers = np.exp(np.outer(lam, 2.0 ** np.arange(_bits(max_block))))
+    powers = np.exp(np.outer(2.0 ** np.arange(_bits(max_block)), lam))
     return PartialTables(lam=lam.copy(), table=table, steps=steps, powers=powers)
 
 
@@ -125,8 +131,8 @@ class OscillatorBank:
         self._table = np.zeros((capacity, 2, split), dtype=np.float32)  # [Re p^i, -Im p^i]
         self._steps = np.zeros((rows, capacity), dtype=np.complex64)  # p^(I j), slots along the rows
         self._bits = _bits(max_block)
-        # p^(2^b), slot-major: advance reads one column per block, moves take whole rows.
-        self._powers = np.zeros((capacity, self._bits), dtype=np.complex128)
+        # p^(2^b), bit-major: advance reads one contiguous row per set bit of the block length.
+        self._powers = np.zeros((self._bits, capacity), dtype=np.complex128)
         # Scratch, sized once.
         self._c32 = np.zeros(capacity, dtype=np.complex64)
         self._rows = np.zeros(rows * chunk, dtype=np.complex64)  # viewed as a contiguous (rows, k)
@@ -147,8 +153,9 @@ class OscillatorBank:
         # Scratch for moving slots, a bounded number at a time (see _compact).
         self._move_max = min(capacity, _MOVE_CHUNK)
         self._moved = [(arr, np.zeros((self._move_max, *arr.shape[1:]), dtype=arr.dtype), 0) for arr in
-                       (self.state, self.lam, self.owner, self.index, self._table, self._powers)]
-        self._moved.append((self._steps, np.zeros((self._steps.shape[0], self._move_max), dtype=self._steps.dtype), 1))
+                       (self.state, self.lam, self.owner, self.index, self._table)]
+        self._moved += [(arr, np.zeros((arr.shape[0], self._move_max), dtype=arr.dtype), 1) for arr in
+                        (self._steps, self._powers)]
 
     # --- adding and changing partials ------------------------------------------------
 
@@ -158,7 +165,7 @@ class OscillatorBank:
         tables = partial_tables(self.lam[lo:hi], split=self.split, max_block=self.max_block)
         self._table[lo:hi] = tables.table
         self._steps[:, lo:hi] = tables.steps
-        self._powers[lo:hi] = tables.powers
+        self._powers[:, lo:hi] = tables.powers
 
     def add(self, lam: NDArray[np.complex128], amplitude: NDArray[np.complex128], owner: int,
             index: NDArray[np.int64] | None = None) -> int:
@@ -225,7 +232,7 @@ class OscillatorBank:
         self.index[lo:hi] = self._slots[:n]
         self._table[lo:hi] = tables.table
         self._steps[:, lo:hi] = tables.steps
-        self._powers[lo:hi] = tables.powers
+        self._powers[:, lo:hi] = tables.powers
         self.count = hi
         if correct is not None:
             self.render_slots(correct[0][at:], self._slots[lo:hi], at, correct[1])
@@ -271,7 +278,7 @@ class OscillatorBank:
             n = hi - lo
             for src, dst, (_, buf, axis) in zip((tables.lam, tables.table, tables.steps, tables.powers),
                                                 (self.lam, self._table, self._steps, self._powers),
-                                                (self._moved[1], self._moved[4], self._moved[6], self._moved[5])):
+                                                self._moved[1:2] + self._moved[4:]):
                 _gather_scatter(src, rows[lo:hi], dst, slots[lo:hi], buf, axis)
         if correct is not None:
             self.render_slots(correct[0][at:], slots, at, correct[1])
@@ -313,7 +320,7 @@ class OscillatorBank:
             hi = min(lo + self.chunk, k_all)
             k = hi - lo
             a = self._rows[: rows * k].reshape(rows, k)
-            for j in range(rows):  # row by row: a 2-D strided product would make numpy buffer
+            for j in range(rows):  # row by row: a broadcast product of a few thousand columns is buffered
                 np.multiply(self._steps[first + j, lo:hi], self._c32[lo:hi], out=a[j])
             self._accumulate(a, self._table[lo:hi], acc)
         self._emit(out, acc, start, stop, first)
@@ -379,7 +386,7 @@ class OscillatorBank:
         state = self.state[:k]
         for b in range(self._bits):
             if frames >> b & 1:
-                state *= self._powers[:k, b]
+                state *= self._powers[b, :k]
 
     # --- removing partials -------------------------------------------------------
 
