@@ -11,6 +11,7 @@ import mido
 import numpy as np
 import pytest
 from scipy import signal
+from threadpoolctl import threadpool_limits
 
 from voicer.engine.bank import DEFAULT_SPLIT
 from voicer.engine.instrument import DAMPER_LEVELS, Instrument
@@ -63,8 +64,8 @@ def tables_b(plain, demo_path):
     return build_tables(apply_voicing(plain, plan), keys=KEYS, use_cache=False)
 
 
-def make(tables, *more, **kw):
-    states = [Instrument(t, sample_rate=FS, max_block=256, split=DEFAULT_SPLIT, name=n)
+def make(tables, *more, block=256, **kw):
+    states = [Instrument(t, sample_rate=FS, max_block=block, split=DEFAULT_SPLIT, name=n)
               for t, n in zip((tables, *more), "AB")]
     return Renderer(states, gain_db=kw.pop("gain_db", GAIN_DB), **kw)
 
@@ -470,26 +471,76 @@ def test_flood_of_random_midi(full_tables) -> None:
         else:
             events.append((t, cc(int(rng.choice([64, 66, 67])), int(rng.integers(0, 128)))))
     out = np.zeros((2, 10 * FS), dtype=np.float32)
-    t0 = time.perf_counter()
     i = pos = 0
     peak_voices = 0
-    while pos < out.shape[1]:
-        chunk = []
-        while i < len(events) and events[i][0] < pos + 256:
-            chunk.append((events[i][0] - pos, events[i][1]))
-            i += 1
-        r.process(out[:, pos:pos + 256], chunk)
-        peak_voices = max(peak_voices, r.voices[0].active)
-        pos += 256
-    elapsed = time.perf_counter() - t0
+    # One BLAS thread, as `voicer play` runs the callback: with two on a busy 2-core machine
+    # the block products stall (issue 4, speed), and this render took 120 s instead of 5.
+    with threadpool_limits(limits=1):
+        t0 = time.perf_counter()
+        while pos < out.shape[1]:
+            chunk = []
+            while i < len(events) and events[i][0] < pos + 256:
+                chunk.append((events[i][0] - pos, events[i][1]))
+                i += 1
+            r.process(out[:, pos:pos + 256], chunk)
+            peak_voices = max(peak_voices, r.voices[0].active)
+            pos += 256
+        elapsed = time.perf_counter() - t0
     assert peak_voices <= r.voices[0].max_voices
     assert np.all(np.isfinite(out)) and np.abs(out).max() <= 10 ** (-1 / 20) + 1e-7
     assert elapsed < 60.0, elapsed
 
 
-def test_callback_allocates_no_arrays_after_warm_up(full_tables) -> None:
-    """The audio callback body (Renderer.process) with notes, pedals and a flip creates no
-    array-sized temporaries: the traced peak grows by far less than one partial array."""
+def _traced_growth(renderer: Renderer, script, repeats: int) -> int:
+    """Peak traced memory (tracemalloc) above its start while ``renderer`` plays ``script``
+    (one list of events per call of its block size): the least over ``repeats`` passes.
+
+    A temporary made on a path of the script shows in every pass; the least filters out
+    what Python and numpy keep once in a while (a list growing its capacity, a cache)."""
+    out = np.zeros((2, renderer.block), dtype=np.float32)
+    passes = []
+    tracemalloc.start()
+    try:
+        for _ in range(repeats):
+            tracemalloc.reset_peak()
+            before, _ = tracemalloc.get_traced_memory()
+            for events in script:
+                renderer.process(out, events)
+            _, peak = tracemalloc.get_traced_memory()
+            passes.append(peak - before)
+    finally:
+        tracemalloc.stop()
+    return min(passes)
+
+
+#: Blocks touching every path of the callback: notes past the voice limit (stealing the
+#: released, then the quietest), sustain (full and half), sostenuto, una corda, all notes
+#: off, A/B by command, controller and program change, and housekeeping.
+ALLOCATION_SCRIPT = [
+    [(5, cc(64, 127))], [(7, off(24)), (9, off(26))], [(1, "flip")], [(3, on(72, 110)), (4, cc(67, 127))],
+    [(100, cc(64, 60))], [(0, on(30)), (10, on(31)), (20, on(33))], [(50, on(26)), (60, cc(66, 127))],
+    [(0, cc(66, 0)), (200, cc(80, 127))], [(30, cc(80, 0)), (40, mido.Message("program_change", program=2))],
+    [(0, cc(64, 0)), (255, on(40, 127))], [(0, on(41, 5)), (1, on(43, 127)), (2, cc(67, 0))],
+    [(128, cc(123, 0))], [], [(0, on(50, 90)), (64, on(52, 90)), (128, on(53, 90))], [], []]
+
+
+def _playing(tables, *, block: int = 256, max_voices: int = 24, idle: bool = False) -> Renderer:
+    """An A/B renderer warmed up on ALLOCATION_SCRIPT, its voices full (or, with ``idle``,
+    the same renderer with nothing ever played)."""
+    r = make(tables, tables, block=block, gain_db=-20.0, max_voices=max_voices, ab_cc=80)
+    out = np.zeros((2, block), dtype=np.float32)
+    chord = [(i, on(k, 110)) for i, k in enumerate(range(24, 96, 2))]  # 36 keys; re-strikes add voices
+    for _ in range(0 if idle else max_voices // 12):  # past the voice limit: voices are stolen
+        r.process(out, chord)
+    for _ in range(3):  # warm-up: every path once
+        for events in ALLOCATION_SCRIPT:
+            r.process(out, [] if idle else events)
+    return r
+
+
+def test_callback_allocates_less_than_a_partial_array(full_tables) -> None:
+    """The coarse check, kept while the tight one below is expected to fail: with notes,
+    pedals and a flip, the traced peak grows by far less than one partial array."""
     r = make(full_tables, full_tables, gain_db=-20.0)  # loud: fewer partials culled, a bigger bank
     out = np.zeros((2, 256), dtype=np.float32)
     chord = [(i, on(k, 110)) for i, k in enumerate(range(24, 96, 2))]
@@ -512,6 +563,75 @@ def test_callback_allocates_no_arrays_after_warm_up(full_tables) -> None:
     # An array over the sounding partials would take >= count * 8 bytes; Python's own
     # small objects (events, ints) stay far below that.
     assert peak - before < count * 8, (peak - before, count)
+
+
+#: Python's own objects that a peak of traced memory also sees (numpy's view objects,
+#: events, frames): about 1.5 kB on this machine, idle or not.
+PYTHON_SLACK = 2048
+
+
+@pytest.mark.xfail(strict=True, raises=AssertionError, reason=(
+    "voicer/engine/bank.py allocates inside the callback: _accumulate adds the float32 block "
+    "product to the float64 sum directly (numpy makes a casting buffer of the block on every "
+    "render), np.compress in retune, owner_slots and _compact makes an index array of the "
+    "selected partials, and the 2-D fancy assignments of _gather_scatter build index "
+    "iterators; remove this mark once the bank is fixed (strict: it then fails as XPASS)"))
+def test_callback_allocates_no_arrays_after_warm_up(full_tables) -> None:
+    """The audio callback body (Renderer.process), through notes, voice stealing, pedals,
+    A/B flips and housekeeping, allocates no arrays after warm-up (tracemalloc):
+
+    * above an idle renderer (the same calls with nothing sounding), its traced peak grows
+      by less than numpy's fixed per-call structure of a grouped update (``np.add.at``,
+      used to sum each voice's partials for stealing and to count them when culling:
+      numpy 2 allocates about 5 kB of iterator state per call, whatever the sizes;
+      measured here) plus PYTHON_SLACK, far less than an array over the partials;
+    * nothing grows with the partials (three times the voices and partials) or with the
+      block (256 -> 2048 samples: a block of float64 grows by 14 kB): the peaks differ by
+      less than PYTHON_SLACK.
+    """
+    fixed = _numpy_at_overhead()
+    quiet = [[] for _ in ALLOCATION_SCRIPT]
+    baseline = _traced_growth(_playing(full_tables, idle=True), quiet, 4)
+    runs = {}
+    for name, kw in {"base": {}, "voices": {"max_voices": 72}, "block": {"block": 2048}}.items():
+        r = _playing(full_tables, **kw)
+        steals, flips = r.voices[0].steals, r.stats.flips
+        growth = _traced_growth(r, ALLOCATION_SCRIPT, 4)
+        assert r.voices[0].steals - steals >= 8 and r.stats.flips - flips == 12, name  # the paths were taken
+        runs[name] = (growth, r.banks[0].count)
+    (base, count), (more, more_count), (longer, _) = runs["base"], runs["voices"], runs["block"]
+    assert count > 1000 and more_count > 2.5 * count, runs
+    assert base - baseline < fixed + PYTHON_SLACK, (runs, baseline, fixed)
+    assert more - base < PYTHON_SLACK and longer - base < PYTHON_SLACK, (runs, baseline)
+
+
+def _numpy_at_overhead() -> int:
+    """Traced peak of one ``np.add.at`` on four numbers (after a first call)."""
+    a, idx = np.zeros(4), np.zeros(4, dtype=np.int64)
+    np.add.at(a, idx, 1.0)
+    tracemalloc.start()
+    try:
+        tracemalloc.reset_peak()
+        before, _ = tracemalloc.get_traced_memory()
+        np.add.at(a, idx, 1.0)
+        _, peak = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    return peak - before
+
+
+def test_allocation_check_sees_a_block_sized_temporary(tables) -> None:
+    """The measurement above can fail: an effect that makes one float64 temporary of the
+    block per call is caught."""
+
+    class Allocating(HalfGain):
+        def process(self, block: np.ndarray) -> None:
+            block *= np.ones(block.shape[1])  # one temporary of 256 float64
+
+    quiet = [[] for _ in range(8)]
+    baseline = _traced_growth(make(tables, effects=[HalfGain()]), quiet, 2)
+    growth = _traced_growth(make(tables, effects=[Allocating()]), quiet, 2)
+    assert growth - baseline >= 256 * 8, (growth, baseline)
 
 
 class HalfGain:

@@ -30,6 +30,7 @@ from .bank import OscillatorBank
 from .instrument import DAMPER_LEVELS, Instrument, KeyData
 
 _FADING = DAMPER_LEVELS + 1  # level index of the fade tables
+_NEVER = np.iinfo(np.int64).max  # release time of a voice not released
 
 
 class Voices:
@@ -66,7 +67,12 @@ class Voices:
         # (buffer, stop) when the current block is already rendered into ``buffer``:
         # every change made at sample ``at`` then corrects samples at..stop-1 of it.
         self.correct: tuple[np.ndarray, int] | None = None
-        self._released: dict[int, None] = {}  # released, not fading voices, oldest first
+        # When each released, not fading voice was released (a running count; _NEVER: not
+        # released). In an array: a dict in release order would resize now and then as
+        # voices come and go, and a list would keep a new int object per release.
+        self._released_at = np.full(ids, _NEVER, dtype=np.int64)
+        self._releases = 0  # running count of releases
+        self._n_released = 0
         self.steals = 0
         self._amp = np.zeros(instrument.max_partials, dtype=np.complex128)
         self._loudness = np.zeros(ids, dtype=np.float64)
@@ -82,7 +88,7 @@ class Voices:
             return
         self.held[key] = True
         for v in self.by_key[key]:
-            self._released.pop(v, None)
+            self._unrelease(v)
         self._update_key(key, at)  # an already sounding key stops being damped
         if self.inst.damper_level(self.sustain_cc) < DAMPER_LEVELS:
             data = data.sympathetic or data  # the other keys' strings are free to answer
@@ -98,7 +104,11 @@ class Voices:
         if self.una_corda and data.una_corda_amplitude is not None:
             amp[:] = data.una_corda_amplitude[min(velocity, 127)]
         elif self.una_corda:
-            np.multiply(data.amplitude[min(velocity, 127)], data.una_corda_gain, out=amp)
+            # Real gains on the real and imaginary parts: a complex-by-float product would
+            # make numpy allocate a casting buffer.
+            amp[:] = data.amplitude[min(velocity, 127)]
+            np.multiply(amp.real, data.una_corda_gain, out=amp.real)
+            np.multiply(amp.imag, data.una_corda_gain, out=amp.imag)
         else:
             amp[:] = data.amplitude[min(velocity, 127)]
         v = self.free.pop()
@@ -113,7 +123,10 @@ class Voices:
             return
         self.held[key] = False
         for v in self.by_key[key]:
-            self._released[v] = None
+            if self._released_at[v] == _NEVER:
+                self._released_at[v] = self._releases
+                self._releases += 1
+                self._n_released += 1
         self._update_key(key, at)
 
     def set_sustain(self, cc: int, at: int = 0) -> None:
@@ -124,9 +137,9 @@ class Voices:
     def set_sostenuto(self, down: bool, at: int = 0) -> None:
         """Sostenuto pedal (CC 66): going down catches the keys held at that moment."""
         if down and not self.sostenuto:
-            self.caught = list(self.held)
+            self._set_caught(self.held)
         elif not down:
-            self.caught = [False] * 128
+            self._set_caught(None)
         self.sostenuto = down
         self._update_all(at)
 
@@ -146,7 +159,7 @@ class Voices:
             for v in list(self.by_key[key]):
                 self._fade(v, at)
             self.held[key] = False
-        self.caught = [False] * 128
+        self._set_caught(None)
 
     # --- upkeep ------------------------------------------------------------------
 
@@ -192,13 +205,25 @@ class Voices:
             if voices:
                 self._update_key(key, at)
 
+    def _unrelease(self, v: int) -> None:
+        if self._released_at[v] != _NEVER:
+            self._released_at[v] = _NEVER
+            self._n_released -= 1
+
+    def _set_caught(self, held: list[bool] | None) -> None:
+        """The keys the sostenuto pedal holds: a copy of ``held``, or none; item by item
+        (a new list, or a slice assignment of 128 items, would allocate)."""
+        caught = self.caught
+        for key in range(128):
+            caught[key] = held[key] if held is not None else False
+
     def _fade(self, v: int, at: int = 0) -> None:
         key = self.key_of[v]
         if key < 0 or self.fading[v]:
             return
         self.bank.retune(v, self.data_of[v].fade, at, self.correct)
         self.by_key[key].remove(v)
-        self._released.pop(v, None)
+        self._unrelease(v)
         self.fading[v], self.level_of[v] = True, _FADING
         self.active -= 1
 
@@ -206,7 +231,7 @@ class Voices:
         key = self.key_of[v]
         if not self.fading[v]:
             self.by_key[key].remove(v)
-            self._released.pop(v, None)
+            self._unrelease(v)
             self.active -= 1
         self.key_of[v], self.fading[v] = -1, False
         self.free.append(v)
@@ -221,16 +246,19 @@ class Voices:
         return False
 
     def _victim(self) -> int:
-        if self._released:
-            return next(iter(self._released))  # the longest released
+        if self._n_released:
+            return int(self._released_at.argmin())  # the longest released
         bank = self.bank
         mag = self._mag[: bank.count]
         np.abs(bank.state[: bank.count], out=mag)
         loud = self._loudness
         loud[:] = 0.0
         np.add.at(loud, bank.owner[: bank.count], mag)
-        candidates = [v for v, key in enumerate(self.key_of) if key >= 0 and not self.fading[v]]
-        return min(candidates, key=lambda v: loud[v])
+        victim, quietest = -1, np.inf
+        for v, key in enumerate(self.key_of):  # no list of candidates: nothing allocated
+            if key >= 0 and not self.fading[v] and loud[v] < quietest:
+                victim, quietest = v, loud[v]
+        return victim
 
     def _steal(self, hard: bool = False, at: int = 0) -> bool:
         """Fade (or with ``hard``, remove) one voice to make room; False if none."""
