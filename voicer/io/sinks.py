@@ -19,6 +19,7 @@ __all__ = [
     "FILE_FORMATS",
     "DEFAULT_SUBTYPE",
     "LOAD_TIME_CONSTANT_S",
+    "MIN_LATENCY_BLOCKS",
     "list_output_devices",
     "format_devices",
     "resolve_output_device",
@@ -46,6 +47,10 @@ FILE_FORMATS: dict[str, str] = {".wav": "WAV", ".flac": "FLAC"}
 DEFAULT_SUBTYPE = "PCM_24"
 #: Time constant of the smoothed callback load of :class:`GuardedCallback`.
 LOAD_TIME_CONSTANT_S = 1.0
+#: A live stream asks for at least this many blocks of output latency, whatever the
+#: ``latency`` option: a block that comes a little late then still meets the device
+#: (issue 4: "default to 256 with at least two periods of output latency").
+MIN_LATENCY_BLOCKS = 2
 
 _DEVICE_HELP = "list the devices with `voicer devices`, or render to a file with `voicer render`"
 _LATENCIES = ("high", "low")
@@ -350,7 +355,8 @@ class PortAudioSink:
         Device index or (part of) its name, as listed by :func:`list_output_devices`;
         default: PortAudio's default output device.
     latency : {'high', 'low'} or float > 0
-        Output latency: PortAudio's safe or low default for the device, or seconds.
+        Output latency: PortAudio's safe or low default for the device, or seconds;
+        never less than :data:`MIN_LATENCY_BLOCKS` blocks (``open`` raises it to that).
 
     Raises
     ------
@@ -369,6 +375,8 @@ class PortAudioSink:
         self.latency = latency
         #: Name of the opened device (None before ``open``).
         self.device_name: str | None = None
+        #: Output latency of the open stream as PortAudio reports it, seconds (None before ``open``).
+        self.latency_s: float | None = None
         self._stream: Any = None
         self._guard: GuardedCallback | None = None
 
@@ -396,9 +404,13 @@ class PortAudioSink:
             raise ParameterError(f"audio output device {info['name']!r} has {info['max_output_channels']} "
                                  f"output channels; channels={channels} asked for")
         guard = GuardedCallback(callback, sample_rate=sample_rate, block=block)
+        # 'high' and 'low' are the device's own defaults (as sounddevice reads them).
+        asked = (info[f"default_{self.latency}_output_latency"] if self.latency in _LATENCIES
+                 else float(self.latency))
+        latency = max(asked, MIN_LATENCY_BLOCKS * block / sample_rate)
         try:
             stream = sd.OutputStream(samplerate=sample_rate, blocksize=block, device=index, channels=channels,
-                                     dtype="float32", latency=self.latency, callback=guard)
+                                     dtype="float32", latency=latency, callback=guard)
         except sd.PortAudioError as exc:
             raise VoicerError(f"cannot open audio output device {info['name']!r} at {sample_rate} Hz, "
                               f"{channels} channels, block {block}: {exc}") from exc
@@ -408,6 +420,7 @@ class PortAudioSink:
             stream.close(ignore_errors=True)
             raise VoicerError(f"cannot start audio output device {info['name']!r}: {exc}") from exc
         self._stream, self._guard, self.device_name = stream, guard, info["name"]
+        self.latency_s = float(stream.latency)
 
     def write(self, block: NDArray[np.float32]) -> None:
         """Not used: a real-time sink pulls its blocks through the callback."""
