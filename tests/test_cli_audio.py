@@ -289,6 +289,39 @@ def test_render_refuses_a_tail_that_is_not_a_duration(capsys, tmp_path, midi, ta
     assert "tail" in err.strip().splitlines()[-1], err
 
 
+SLOW_S = 1.0  # a slowed step in the timing test: far above the short render (~0.1 s)
+
+
+def test_render_s_is_the_rendering_alone(capsys, tmp_path, midi, monkeypatch) -> None:
+    """render_s in --stats-json is the wall time of rendering alone (issue 4): building the
+    tables and writing the file, each slowed here by SLOW_S, are left out."""
+    import voicer.cli_audio as cli_audio
+    from voicer.io.sinks import FileSink
+
+    real_prepare, real_write = cli_audio.prepare_states, FileSink._write
+    writes = []
+
+    def slow_prepare(*args, **kwargs):
+        time.sleep(SLOW_S)
+        return real_prepare(*args, **kwargs)
+
+    def slow_write(self, block):
+        if not writes:
+            time.sleep(SLOW_S)  # a slow disk, once
+        writes.append(block.shape[1])
+        real_write(self, block)
+
+    monkeypatch.setattr(cli_audio, "prepare_states", slow_prepare)
+    monkeypatch.setattr(FileSink, "_write", slow_write)
+    started = time.perf_counter()
+    _, stats, stdout = render(capsys, tmp_path, "timed.wav", midi_path=midi["short"])
+    wall = time.perf_counter() - started
+    assert sum(writes) == stats["frames"]  # every block went through the slowed write
+    assert 0 < stats["render_s"] < SLOW_S, stats["render_s"]  # not the slow write
+    assert stats["render_s"] < wall - 2 * SLOW_S, (stats["render_s"], wall)  # nor the building
+    assert f"rendered in {stats['render_s']:.2f} s" in stdout
+
+
 # --- voicer play and voicer devices, in subprocesses ------------------------------------------
 
 def _home(folder: Path, asoundrc: str) -> Path:
