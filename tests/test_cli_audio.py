@@ -322,6 +322,34 @@ def test_render_s_is_the_rendering_alone(capsys, tmp_path, midi, monkeypatch) ->
     assert f"rendered in {stats['render_s']:.2f} s" in stdout
 
 
+def test_ctrl_c_while_building_tables_exits_130_and_keeps_the_old_file(tmp_path) -> None:
+    """Ctrl-C (SIGINT) during `voicer render`'s table building: one line, no traceback,
+    exit status 130 (128 + SIGINT, the shell's convention), and the output file as it was:
+    the file sink writes to a temporary file, deleted on the way out."""
+    import signal
+
+    out = tmp_path / "out" / "song.wav"
+    out.parent.mkdir()
+    out.write_bytes(b"the previous render")
+    home = _home(tmp_path / "home", NULL_DEVICE)
+    # An empty table cache: the tables take seconds to build.
+    proc = _start(home, tmp_path / "empty-cache", "render", "demo", DEMO_MIDI, "-o", out)
+    deadline = time.perf_counter() + 30.0
+    # The sink opens its temporary file just before the tables are built.
+    while not list(out.parent.glob(".song.wav.*.tmp")) and proc.poll() is None and time.perf_counter() < deadline:
+        time.sleep(0.02)
+    assert proc.poll() is None, proc.communicate()
+    time.sleep(0.3)
+    proc.send_signal(signal.SIGINT)
+    result = Result(proc, timeout=30.0)
+    assert not result.timed_out
+    assert "Traceback" not in result.stderr, result.stderr
+    assert result.returncode == 130, result.stderr
+    assert [line for line in result.lines if line] == ["voicer render: interrupted"], result.stderr
+    assert out.read_bytes() == b"the previous render"
+    assert sorted(p.name for p in out.parent.iterdir()) == ["song.wav"]  # no temporary file left
+
+
 # --- voicer play and voicer devices, in subprocesses ------------------------------------------
 
 def _home(folder: Path, asoundrc: str) -> Path:

@@ -1,7 +1,8 @@
 """The ``voicer`` command line.
 
 Every command has ``--help`` with an example. Bad input exits with status 2 and one line
-on standard error; nothing else is printed for it.
+on standard error; nothing else is printed for it. Ctrl-C exits with status 130 and the
+line "voicer COMMAND: interrupted" (no traceback).
 """
 
 from __future__ import annotations
@@ -27,6 +28,8 @@ from .tone.params import KEY_PARAM_BY_NAME
 from .tone.preset import Preset, load_preset
 
 EXIT_BAD_INPUT = 2
+#: Ctrl-C: 128 + SIGINT (2), as a shell reports a command killed by it (common practice).
+EXIT_INTERRUPTED = 130
 
 
 def _cmd_scale(args: argparse.Namespace) -> int:
@@ -403,6 +406,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     except VoicerError as exc:
         print(f"voicer {args.command}: error: {exc}", file=sys.stderr)
         return EXIT_BAD_INPUT
+    except KeyboardInterrupt:  # Ctrl-C while tables are built or files written: files are left as they were
+        print(f"voicer {args.command}: interrupted", file=sys.stderr)
+        return EXIT_INTERRUPTED
     except BrokenPipeError:  # e.g. `voicer scale demo | head`: stop quietly
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return 0
