@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import os
 import re
 import subprocess
 import sys
@@ -65,25 +66,48 @@ def test_scale_table_lists_the_compass(capsys, demo_path) -> None:
     assert " 69 A4      440.00" in out
 
 
-def test_demo_renders_both_states(capsys, tmp_path) -> None:
+def test_demo_renders_both_states_and_plays_them(tmp_path) -> None:
+    """`voicer demo` as a command, with an audio device: ALSA's null plugin as the default
+    PCM (a test-local HOME with an .asoundrc holding pcm.!default { type null }, as in
+    tests/test_cli_audio.py; Debian's libportaudio2). It writes both WAVs and plays both
+    through PortAudio (the null device is unclocked: faster than real time)."""
     import soundfile as sf
 
-    code, out, _ = run(capsys, "demo", "--out-dir", str(tmp_path), "--no-play")
-    assert code == 0 and "KH-190 salon grand" in out
+    import voicer
+
+    home = tmp_path / "home"
+    home.mkdir()
+    (home / ".asoundrc").write_text("pcm.!default { type null }\n")
+    out_dir = tmp_path / "demo"
+    env = dict(os.environ, HOME=str(home), XDG_CONFIG_HOME=str(home / ".config"),
+               PYTHONPATH=os.pathsep.join([str(Path(voicer.__file__).parents[1]), os.environ.get("PYTHONPATH", "")]))
+    env.pop("ALSA_CONFIG_PATH", None)  # ALSA's own system configuration, then the test's .asoundrc
+    # The table cache is this test's (conftest's VOICER_CACHE_DIR, inherited); warnings are errors there too.
+    done = subprocess.run([sys.executable, "-W", "error", "-m", "voicer", "demo", "--out-dir", str(out_dir)], env=env,
+                          stdin=subprocess.DEVNULL, capture_output=True, text=True, timeout=600)
+    out = done.stdout
+    if "libportaudio2" in out:
+        pytest.fail(f"libportaudio2 is missing (CI installs it: apt-get install libportaudio2): {out}")
+    assert done.returncode == 0, done.stderr
+    assert "Traceback" not in done.stderr, done.stderr
+    assert "KH-190 salon grand" in out and "not playing" not in out, out
     for state in "AB":
-        path = tmp_path / f"demo-{state}.wav"
+        path = out_dir / f"demo-{state}.wav"
         assert f"wrote {path}" in out
         data, rate = sf.read(path)
         assert rate == 48_000 and 30 < len(data) / rate < 40 and 0.1 < abs(data).max() < 10 ** (-1 / 20)
-    a, b = sf.read(tmp_path / "demo-A.wav")[0], sf.read(tmp_path / "demo-B.wav")[0]
+        # Played through the device to the end of the file, with no late or silenced block.
+        assert f"playing demo-{state}.wav ({len(data) / rate:.0f} s; Ctrl-C to skip)" in out.splitlines(), out
+        assert f"played demo-{state}.wav after {len(data) / rate:.1f} s on default" in out.splitlines(), out
+    a, b = sf.read(out_dir / "demo-A.wav")[0], sf.read(out_dir / "demo-B.wav")[0]
     assert a.shape == b.shape and not np.allclose(a, b)  # the voicing is heard
     # The scenario (presets/voicings/kestrel-190-wear.toml): the worn hammers are the
     # outliers the table shows and the plan treats, and the client's report is written.
     for key in ("D3 ( 50)", "D#3 ( 51)", "E4 ( 64)", "G4 ( 67)"):
         assert key in out
-    plan = (tmp_path / "suggested-plan.toml").read_text()
+    plan = (out_dir / "suggested-plan.toml").read_text()
     assert "D3 (50): harden" in plan and "E4 (64): needle" in plan and "G4 (67): needle" in plan
-    assert "needling cannot be undone" in (tmp_path / "report.html").read_text()
+    assert "needling cannot be undone" in (out_dir / "report.html").read_text()
 
 
 def test_bad_preset_exits_2_with_one_line(capsys, tmp_path) -> None:

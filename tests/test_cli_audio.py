@@ -322,6 +322,101 @@ def test_render_s_is_the_rendering_alone(capsys, tmp_path, midi, monkeypatch) ->
     assert f"rendered in {stats['render_s']:.2f} s" in stdout
 
 
+def test_render_takes_its_source_and_sink_from_the_plugin_host(capsys, tmp_path, midi, monkeypatch) -> None:
+    """The MIDI file source and the file sink of `voicer render` are the classes the plugin
+    host registers (voicer.sources midi-file, voicer.sinks file), not imported ones."""
+    import dataclasses
+
+    import voicer.cli_audio as cli_audio
+    from voicer.engine.host import discover
+    from voicer.io.sinks import FileSink
+    from voicer.io.sources import MidiFileSource
+
+    made = []
+
+    class CountedSink(FileSink):
+        def __init__(self, *args, **kwargs):
+            super().__init__(*args, **kwargs)
+            made.append("sink")
+
+    class CountedSource(MidiFileSource):
+        def __init__(self, *args, **kwargs):
+            super().__init__(*args, **kwargs)
+            made.append("source")
+
+    swap = {("sinks", "file"): CountedSink, ("sources", "midi-file"): CountedSource}
+    monkeypatch.setattr(cli_audio, "discover", lambda: [dataclasses.replace(p, cls=swap.get((p.kind, p.name), p.cls))
+                                                      for p in discover()])
+    out, stats, _ = render(capsys, tmp_path, "hosted.wav", midi_path=midi["short"])
+    assert sorted(made) == ["sink", "source"]
+    assert soundfile.info(out).frames == stats["frames"]
+
+
+def test_a_broken_plugin_is_named_and_skipped(capsys, tmp_path, midi, monkeypatch) -> None:
+    """A third-party sink whose module is missing, installed as a real distribution (a
+    .dist-info folder on sys.path, found by importlib.metadata): `voicer render` names it
+    on standard error with the reason, and renders through the built-in file sink."""
+    site = tmp_path / "site"
+    dist = site / "voicer_broken_sink-0.1.dist-info"
+    dist.mkdir(parents=True)
+    (dist / "METADATA").write_text("Metadata-Version: 2.1\nName: voicer-broken-sink\nVersion: 0.1\n")
+    (dist / "entry_points.txt").write_text("[voicer.sinks]\nbroken-sink = voicer_no_such_module:Sink\n")
+    monkeypatch.syspath_prepend(str(site))
+    out = tmp_path / "despite.wav"
+    code, stdout, err = run(capsys, "render", "demo", midi["short"], "-o", out, "--tail", "0.5")
+    assert code == 0 and stdout.startswith(f"wrote {out}")
+    assert soundfile.info(out).frames > 0
+    assert err.splitlines() == ["voicer: skipping the broken sinks plugin 'broken-sink' (voicer_no_such_module:Sink): "
+                                "cannot be loaded: ModuleNotFoundError: No module named 'voicer_no_such_module'"]
+
+
+def test_demo_playback_goes_through_the_registered_live_sink(capsys, tmp_path, monkeypatch, rng) -> None:
+    """The demo's playback (voicer.cli_audio._play_files) opens the live sink the plugin
+    host registers as ``portaudio`` and hands it the file's samples, block by block; here an
+    in-memory real-time sink that calls back from its own thread, as PortAudio does."""
+    import dataclasses
+    import threading
+
+    import voicer.cli_audio as cli_audio
+    from voicer.engine.host import discover
+
+    class MemoryLiveSink:
+        name, realtime, device_name, late_blocks, faults = "memory", True, "memory", 0, 0
+        blocks: list[np.ndarray] = []
+
+        def open(self, *, sample_rate, channels, block, callback=None):
+            self.stop = threading.Event()
+            buf = np.zeros((channels, block), dtype=np.float32)
+
+            def run():
+                while not self.stop.wait(0.0005):  # paced, so that the copies stay few
+                    callback(buf)
+                    MemoryLiveSink.blocks.append(buf.copy())
+
+            self.thread = threading.Thread(target=run, daemon=True)
+            self.thread.start()
+
+        def write(self, block):
+            raise AssertionError("a real-time sink is not written to")
+
+        def close(self):
+            self.stop.set()
+            self.thread.join()
+
+    monkeypatch.setattr(cli_audio, "discover", lambda: [
+        dataclasses.replace(p, cls=MemoryLiveSink) if (p.kind, p.name) == ("sinks", "portaudio") else p
+        for p in discover()])
+    path = tmp_path / "take.wav"
+    music = (0.25 * rng.standard_normal((RATE // 2, 2))).astype(np.float32)
+    soundfile.write(path, music, RATE, subtype="FLOAT")
+    cli_audio._play_files([path], cli_audio.Plugins())
+    out = capsys.readouterr().out.splitlines()
+    assert out == ["playing take.wav (0 s; Ctrl-C to skip)", "played take.wav after 0.5 s on memory"]
+    played = np.concatenate(MemoryLiveSink.blocks, axis=1).T
+    np.testing.assert_array_equal(played[: len(music)], music)  # FLOAT WAV: exact
+    assert np.all(played[len(music):] == 0.0)  # silence after the end
+
+
 def test_ctrl_c_while_building_tables_exits_130_and_keeps_the_old_file(tmp_path) -> None:
     """Ctrl-C (SIGINT) during `voicer render`'s table building: one line, no traceback,
     exit status 130 (128 + SIGINT, the shell's convention), and the output file as it was:

@@ -1,8 +1,14 @@
-"""The sound commands of the command line: render, play, demo, devices, plugins."""
+"""The sound commands of the command line: render, play, demo, devices, plugins.
+
+Everything these commands play through or read from (the model, the room, the file and
+PortAudio sinks, the MIDI file and port sources) comes through the plugin host, like a
+third-party plugin would: a broken plugin is reported by name on standard error and
+skipped.
+"""
 
 from __future__ import annotations
 
-__all__ = ["cmd_render", "cmd_play", "cmd_demo", "cmd_devices", "cmd_plugins", "render_file"]
+__all__ = ["cmd_render", "cmd_play", "cmd_demo", "cmd_devices", "cmd_plugins", "render_file", "Plugins"]
 
 import argparse
 import contextlib
@@ -12,10 +18,11 @@ import sys
 import threading
 import time
 from pathlib import Path
+from typing import TYPE_CHECKING, Any
 
 from threadpoolctl import threadpool_limits
 
-from .engine.host import Effect, discover, format_plugins, load_plugin
+from .engine.host import Effect, PluginInfo, discover, format_plugins, load_plugin
 from .engine.keyboard import HELP, KNOB_HELP, KeyboardPlayer, raw_terminal
 from .engine.knob_state import keys_text, parse_key_spec
 from .engine.knobs import KnobMap, load_knobs
@@ -27,11 +34,15 @@ from .engine.rebuild import LIVE_MODELS
 from .engine.session import prepare_states, table_settings
 from .errors import VoicerError
 from .io.atomic import atomic_write_bytes
-from .io.sinks import FileSink, PortAudioSink, format_devices, list_output_devices
-from .io.sources import MidiFileSource, MidiPortSource, format_ports
+from .io.sinks import format_devices, list_output_devices
+from .io.sources import format_ports
 from .resources import DEMO_PIANO, find_preset, presets_dir
 from .tone.preset import Preset, load_preset
 from .tone.voicing import load_voicing
+
+if TYPE_CHECKING:  # pragma: no cover
+    from .io.sinks import PortAudioSink
+    from .io.sources import MidiPortSource
 
 CHANNELS = 2
 DEMO_MIDI = "demo-passage.mid"
@@ -43,27 +54,46 @@ def _tty() -> bool:
     return sys.stderr.isatty()
 
 
-def _effects(room_s: float | None, mix: float, *, sample_rate: int, block: int) -> list[Effect]:
+class Plugins:
+    """The plugins a command uses, discovered once; each broken one is reported on
+    standard error by name, with its reason, and skipped (``voicer plugins`` lists them)."""
+
+    def __init__(self) -> None:
+        self.found: list[PluginInfo] = discover()
+        for p in self.found:
+            if p.cls is None:
+                print(f"voicer: skipping the broken {p.kind} plugin {p.name!r} ({p.target}): {p.error}",
+                      file=sys.stderr)
+
+    def get(self, kind: str, name: str) -> type:
+        """The class of the usable plugin ``name`` of ``kind`` (see :func:`load_plugin`)."""
+        return load_plugin(kind, name, self.found)
+
+
+def _effects(plugins: Plugins, room_s: float | None, mix: float, *, sample_rate: int, block: int) -> list[Effect]:
     """The effects the options ask for (--room: the ``room`` effect plugin), prepared."""
     if room_s is None:
         return []
-    room = load_plugin("effects", "room")(rt60_s=room_s, wet_mix=mix)
+    room = plugins.get("effects", "room")(rt60_s=room_s, wet_mix=mix)
     room.prepare(sample_rate, block, 1)
     return [room]
 
 
 def render_file(preset: Preset, midi: str | Path, out: str | Path, *, voicing: str | Path | None, sample_rate: int,
                 block: int, gain_db: float, tail_s: float, subtype: str | None, model: str = "physical",
-                state: str = "B", room_s: float | None = None, room_mix: float = 0.25) -> RenderResult:
+                state: str = "B", room_s: float | None = None, room_mix: float = 0.25,
+                plugins: Plugins | None = None) -> RenderResult:
     """Render a MIDI file through one voicing state (A: the preset, B: with the plan) to a
-    file, with a generated room if ``room_s`` (its RT60) is given."""
-    source = MidiFileSource(midi)
-    with FileSink(out, subtype=subtype) as sink:  # checks the output before the tables are built
+    file, with a generated room if ``room_s`` (its RT60) is given; the source, the sink,
+    the model and the room come from ``plugins`` (default: discovered now)."""
+    plugins = plugins if plugins is not None else Plugins()
+    source = plugins.get("sources", "midi-file")(midi)
+    with plugins.get("sinks", "file")(out, subtype=subtype) as sink:  # checks the output before the tables are built
         sink.open(sample_rate=sample_rate, channels=CHANNELS, block=block)
         states = prepare_states(preset, voicing if state == "B" else None, sample_rate=sample_rate, block=block,
-                                model=model, both=False, progress=_tty())
+                                model=model, both=False, progress=_tty(), plugins=plugins.found)
         renderer = Renderer(states, gain_db=gain_db,
-                            effects=_effects(room_s, room_mix, sample_rate=sample_rate, block=block))
+                            effects=_effects(plugins, room_s, room_mix, sample_rate=sample_rate, block=block))
         result = render_events(renderer, source.events(), sink, tail_s=tail_s, channels=CHANNELS, progress=_tty())
     return result
 
@@ -106,10 +136,10 @@ def cmd_render(args: argparse.Namespace) -> int:
     return 0
 
 
-def _feed_file(path: str | Path, live: LiveInput, stop: threading.Event) -> None:
-    """Send a MIDI file's events in real time (a thread)."""
+def _feed_file(source: Any, live: LiveInput, stop: threading.Event) -> None:
+    """Send a MIDI file source's events in real time (a thread)."""
     start = time.perf_counter()
-    for t, message in MidiFileSource(path).events():
+    for t, message in source.events():
         while not stop.is_set() and time.perf_counter() - start < t:
             stop.wait(min(0.005, max(t - (time.perf_counter() - start), 0.0)))
         if stop.is_set():
@@ -148,10 +178,12 @@ def _play(args: argparse.Namespace) -> int:
     preset = load_preset(find_preset(args.preset))
     mapping = _knob_map(args)
     key_range = parse_key_spec(args.knob_keys) if mapping is not None and args.knob_keys else None
+    plugins = Plugins()
     states = prepare_states(preset, args.voicing, sample_rate=args.sample_rate, block=args.block, model=args.model,
-                            progress=_tty())
+                            progress=_tty(), plugins=plugins.found)
     renderer = Renderer(states, gain_db=args.gain_db, ab_cc=args.ab_cc,
-                        effects=_effects(args.room, args.room_mix, sample_rate=args.sample_rate, block=args.block))
+                        effects=_effects(plugins, args.room, args.room_mix, sample_rate=args.sample_rate,
+                                         block=args.block))
     knobs: LiveKnobs | None = None
     if mapping is not None:
         knobs = LiveKnobs(mapping, renderer, root=preset, base_plan=load_voicing(args.voicing) if args.voicing else None,
@@ -163,11 +195,11 @@ def _play(args: argparse.Namespace) -> int:
     keyboard: KeyboardPlayer | None = None
     feeder: threading.Thread | None = None
     if args.midi_file:
-        MidiFileSource(args.midi_file)  # fail early on a bad file
-        feeder = threading.Thread(target=_feed_file, args=(args.midi_file, live, stop), daemon=True)
+        song = plugins.get("sources", "midi-file")(args.midi_file)  # fails early on a bad file
+        feeder = threading.Thread(target=_feed_file, args=(song, live, stop), daemon=True)
     elif args.midi_in is not None or args.midi_virtual or not sys.stdin.isatty():
-        source = MidiPortSource(args.midi_in, virtual=args.midi_virtual)
-    sink = PortAudioSink(args.device, latency=args.latency)
+        source = plugins.get("sources", "midi-port")(args.midi_in, virtual=args.midi_virtual)
+    sink = plugins.get("sinks", "portaudio")(args.device, latency=args.latency)
     sink.open(sample_rate=args.sample_rate, channels=CHANNELS, block=args.block,
               callback=lambda out: renderer.process(out, live.drain(out.shape[1])))
     started = False
@@ -267,21 +299,23 @@ def cmd_demo(args: argparse.Namespace) -> int:
     report = write_report(result, out_dir / "report.html")
     print(f"  suggested plan: {voicing}; report for the client: {report}")
     print("  state A: the piano as found; state B: with the suggested plan (a preview, not a promise)")
+    plugins = Plugins()
     files = []
     for state in ("A", "B"):
         path = out_dir / f"demo-{state}.wav"
         rendered = render_file(found, midi, path, voicing=voicing, sample_rate=args.sample_rate, block=256,
-                               gain_db=args.gain_db, tail_s=3.0, subtype=None, state=state)
+                               gain_db=args.gain_db, tail_s=3.0, subtype=None, state=state, plugins=plugins)
         print("  " + _summary(path, rendered, args.sample_rate))
         files.append(path)
     print(f"files: {', '.join(str(p.resolve()) for p in files)}")
     if not args.no_play:
-        _play_files(files, args.sample_rate)
+        _play_files(files, plugins)
     return 0
 
 
-def _play_files(files: list[Path], sample_rate: int) -> None:
-    """Play rendered files through the default device, if there is one."""
+def _play_files(files: list[Path], plugins: Plugins) -> None:
+    """Play rendered files through the default device, if there is one, saying what was
+    played (or skipped with Ctrl-C) and any late or silenced blocks."""
     import soundfile as sf
 
     for path in files:
@@ -295,20 +329,26 @@ def _play_files(files: list[Path], sample_rate: int) -> None:
             out[:, chunk.shape[1]:] = 0.0
             pos[0] += n
 
-        sink = PortAudioSink()
+        sink = plugins.get("sinks", "portaudio")()
         try:
             sink.open(sample_rate=rate, channels=data.shape[1], block=512, callback=fill)
         except VoicerError as exc:
             print(f"not playing: {exc}")
             return
         print(f"playing {path.name} ({len(data) / rate:.0f} s; Ctrl-C to skip)")
+        skipped = False
         try:
             while pos[0] < len(data):
                 time.sleep(0.1)
         except KeyboardInterrupt:
-            pass
+            skipped = True
         finally:
             sink.close()
+        played = min(pos[0], len(data)) / rate
+        problems = [f"{n} {what}" for n, what in ((sink.late_blocks, "late blocks"), (sink.faults, "silenced blocks"))
+                    if n]
+        print(f"{'skipped' if skipped else 'played'} {path.name} after {played:.1f} s on {sink.device_name}"
+              + (f"; {', '.join(problems)}" if problems else ""))
 
 
 def cmd_devices(args: argparse.Namespace) -> int:
@@ -323,5 +363,6 @@ def cmd_devices(args: argparse.Namespace) -> int:
 
 
 def cmd_plugins(args: argparse.Namespace) -> int:
+    # Not through Plugins: this lists the broken ones itself.
     print(format_plugins(discover()))
     return 0

@@ -10,7 +10,7 @@ from ..tone.preset import Preset
 from ..tone.tables import TableSettings
 from ..tone.voicing import apply_voicing, load_voicing
 from .bank import DEFAULT_SPLIT
-from .host import load_plugin
+from .host import PluginInfo, load_plugin
 from .instrument import Instrument
 
 
@@ -20,12 +20,14 @@ def table_settings(sample_rate: int) -> TableSettings:
 
 
 def prepare_states(preset: Preset, voicing: str | Path | None, *, sample_rate: int, block: int,
-                   model: str = "physical", both: bool = True, progress: bool = False) -> list[Instrument]:
+                   model: str = "physical", both: bool = True, progress: bool = False,
+                   plugins: list[PluginInfo] | None = None) -> list[Instrument]:
     """State A (the preset) and, with a voicing plan, state B (the plan applied).
 
-    With ``both=False`` and a plan, only the voiced state is returned (renders).
+    With ``both=False`` and a plan, only the voiced state is returned (renders). The
+    model plugin comes from ``plugins`` (default: discovered now).
     """
-    builder = load_plugin("models", model)()
+    builder = load_plugin("models", model, plugins)()
     settings = table_settings(sample_rate)
     presets: list[tuple[str, Preset]] = [("A", preset)]
     if voicing is not None:
