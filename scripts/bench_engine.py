@@ -85,7 +85,7 @@ def time_interleaved(renderer: Renderer, block: int) -> tuple[float, float, floa
     of each and the mean partial count."""
     src = renderer.banks[renderer.audible]
     k = src.count
-    kernel = OscillatorBank(k, max_block=block, split=src.split)
+    kernel = OscillatorBank(k, owners=1, max_block=block, split=src.split)
     kernel.add(src.lam[:k].copy(), src.state[:k].copy(), owner=0)
     out = np.zeros((2, block), dtype=np.float32)
     kout = np.zeros(block)

@@ -16,10 +16,12 @@ complex128 and advanced once per block by ``p_k^frames`` (a product of stored po
 accumulates: it is confined to one block (drift bounds in ``tests/test_bank.py``). Long
 float32 sums can lose accuracy, so partials are summed in chunks and the chunks in float64.
 
-Partials live in slots ``0..count-1`` of preallocated arrays; a partial that has decayed
-below the threshold is removed by moving the last one into its slot (order does not
-matter for a sum). Nothing here allocates arrays after construction: every operation
-writes into preallocated buffers, so it may run inside an audio callback.
+Partials live in slots ``0..count-1`` of preallocated arrays; removed partials leave
+holes that the survivors from the top of the range fill (order does not matter for a
+sum). A directory lists each owner's slots as one run, so an owner's partials are found
+without a search over the bank. Nothing here allocates arrays after construction: every
+operation writes into preallocated buffers (numpy's ``compress`` and ``nonzero`` make index
+arrays, so selections go through :func:`_select`), so it may run inside an audio callback.
 """
 
 from __future__ import annotations
@@ -93,7 +95,41 @@ def _gather_scatter(src: NDArray, src_idx: NDArray[np.int64], dst: NDArray, dst_
         for j in range(src.shape[0]):
             row = buf[j, :n]
             src[j].take(src_idx, out=row, mode="clip")
-            dst[j, dst_idx] = row
+            dst[j][dst_idx] = row  # a 2-D index dst[j, idx] builds an index iterator (~3 kB)
+
+
+def _count_before(mask: NDArray[np.bool_], run: NDArray[np.int64], flags: NDArray[np.int64]) -> int:
+    """``run[i]`` = how many of ``mask[:i]`` are set, for ``i = 0..len(mask)``; returns the
+    total. ``flags[:len(mask)]`` is left holding the mask as 0/1."""
+    k = len(mask)
+    flag = flags[:k]
+    np.copyto(flag, mask)  # cast here: cumsum would cast through a buffer
+    run[0] = 0
+    np.cumsum(flag, out=run[1:k + 1])
+    return int(run[k])
+
+
+def _scatter_selected(values: NDArray, out: NDArray, run: NDArray[np.int64], flags: NDArray[np.int64],
+                      h: int) -> None:
+    """After :func:`_count_before`: ``out[:h] = values[mask]`` in order (``run[:k]`` is
+    overwritten). Selected item ``i`` goes to position ``run[i]``, every other item to
+    the spare position ``h`` (``out`` needs ``h + 1``), so no kept position is written twice."""
+    k = len(values)
+    pos, flag = run[:k], flags[:k]
+    np.subtract(pos, h, out=pos)
+    np.multiply(pos, flag, out=pos)
+    np.add(pos, h, out=pos)
+    out[pos] = values
+
+
+def _select(mask: NDArray[np.bool_], values: NDArray, out: NDArray, run: NDArray[np.int64],
+            flags: NDArray[np.int64]) -> int:
+    """``out[:h] = values[mask]`` without the index arrays that ``np.compress`` makes (8-16
+    bytes per selected item); returns ``h``. ``run`` and ``flags`` are int64 scratch of
+    ``len(mask) + 1``."""
+    h = _count_before(mask, run, flags)
+    _scatter_selected(values, out, run, flags, h)
+    return h
 
 
 class OscillatorBank:
@@ -109,13 +145,15 @@ class OscillatorBank:
         Samples per row of the block matrix.
     chunk : int > 0
         Partials per float32 partial sum.
-    owners : int >= 0
-        With owner ids 0..owners-1, ``owner_counts`` keeps each owner's partial count.
+    owners : int > 0
+        Owner ids are 0..owners-1 (the engine's voices). An owner adds its partials in one
+        call, and again only once it has none left; ``owner_counts`` keeps its count.
     """
 
-    def __init__(self, capacity: int, *, max_block: int = 256, split: int = DEFAULT_SPLIT,
-                 chunk: int = DEFAULT_CHUNK, owners: int = 0) -> None:
-        for name, value in (("capacity", capacity), ("max_block", max_block), ("split", split), ("chunk", chunk)):
+    def __init__(self, capacity: int, *, owners: int, max_block: int = 256, split: int = DEFAULT_SPLIT,
+                 chunk: int = DEFAULT_CHUNK) -> None:
+        for name, value in (("capacity", capacity), ("owners", owners), ("max_block", max_block),
+                            ("split", split), ("chunk", chunk)):
             if value < 1:
                 raise ParameterError(f"{name}={value} must be >= 1")
         self.capacity, self.max_block, self.split, self.chunk = capacity, max_block, split, chunk
@@ -126,8 +164,17 @@ class OscillatorBank:
         self.owner = np.full(capacity, -1, dtype=np.int64)  # who added the partial (the engine's voice)
         self.index = np.zeros(capacity, dtype=np.int64)  # the owner's number for it (partial n)
         self.owner_counts = np.zeros(owners, dtype=np.int64)  # partials per owner id
-        self._dead = np.zeros(capacity, dtype=bool)
-        self._dead_owner = np.zeros(capacity, dtype=np.int64)
+        # The directory: _dir[:count] lists the slots owner by owner, owner v's run starting
+        # at _start[v] (owner_counts[v] long). _pos: its inverse, built when compacting.
+        self._dir = np.zeros(capacity + 1, dtype=np.int64)  # + 1: _select's spare position
+        self._dir_spare = np.zeros(capacity + 1, dtype=np.int64)
+        self._pos = np.zeros(capacity, dtype=np.int64)
+        self._start = np.zeros(owners, dtype=np.int64)
+        self._owner_a = np.zeros(owners, dtype=np.int64)
+        self._owner_b = np.zeros(owners, dtype=np.int64)
+        self._run = np.zeros(capacity + 1, dtype=np.int64)  # _select's scratch
+        self._flags = np.zeros(capacity + 1, dtype=np.int64)
+        self._kept = np.zeros(capacity, dtype=bool)  # the keep mask in directory order
         self._table = np.zeros((capacity, 2, split), dtype=np.float32)  # [Re p^i, -Im p^i]
         self._steps = np.zeros((rows, capacity), dtype=np.complex64)  # p^(I j), slots along the rows
         self._bits = _bits(max_block)
@@ -138,18 +185,19 @@ class OscillatorBank:
         self._rows = np.zeros(rows * chunk, dtype=np.complex64)  # viewed as a contiguous (rows, k)
         self._part = np.zeros((rows, split), dtype=np.float32)
         self._sum = np.zeros((rows, split), dtype=np.float64)
+        self._part64 = np.zeros((rows, split), dtype=np.float64)
         self._scratch = np.zeros(capacity, dtype=np.complex128)
         self._mag = np.zeros(capacity, dtype=np.float64)
         self._keep = np.zeros(capacity, dtype=bool)
         self._hole_mask = np.zeros(capacity, dtype=bool)
         self._slots = np.arange(capacity)
-        self._holes = np.zeros(capacity, dtype=np.int64)
-        self._picked = np.zeros(capacity, dtype=np.int64)  # slots of a partial render
+        self._holes = np.zeros(capacity + 1, dtype=np.int64)
+        self._picked = np.zeros(capacity, dtype=np.int64)
         self._g_state = np.zeros(chunk, dtype=np.complex128)
         self._g_c32 = np.zeros(chunk, dtype=np.complex64)
         self._g_step = np.zeros(chunk, dtype=np.complex64)
         self._g_table = np.zeros((chunk, 2, split), dtype=np.float32)
-        self._movers = np.zeros(capacity, dtype=np.int64)
+        self._movers = np.zeros(capacity + 1, dtype=np.int64)
         # Scratch for moving slots, a bounded number at a time (see _compact).
         self._move_max = min(capacity, _MOVE_CHUNK)
         self._moved = [(arr, np.zeros((self._move_max, *arr.shape[1:]), dtype=arr.dtype), 0) for arr in
@@ -167,6 +215,22 @@ class OscillatorBank:
         self._steps[:, lo:hi] = tables.steps
         self._powers[:, lo:hi] = tables.powers
 
+    def _claim(self, owner: int, n: int) -> int:
+        """Slots ``count..count+n-1`` for ``owner``, entered in the directory; returns the first."""
+        lo, hi = self.count, self.count + n
+        if hi > self.capacity:
+            raise ParameterError(f"oscillator bank full: {self.count} + {n} partials > capacity {self.capacity}")
+        if not 0 <= owner < len(self.owner_counts):
+            raise ParameterError(f"owner {owner} must be in 0..{len(self.owner_counts) - 1}")
+        if self.owner_counts[owner]:
+            raise ParameterError(f"owner {owner} still has {self.owner_counts[owner]} partials: "
+                                 "an owner adds once until they are gone")
+        self.owner[lo:hi] = owner
+        self.owner_counts[owner] = n
+        self._start[owner] = lo  # the directory ends at count: the new run goes there
+        self._dir[lo:hi] = self._slots[lo:hi]
+        return lo
+
     def add(self, lam: NDArray[np.complex128], amplitude: NDArray[np.complex128], owner: int,
             index: NDArray[np.int64] | None = None) -> int:
         """Add partials, computing their tables (allocates; see :meth:`add_tables`);
@@ -179,25 +243,22 @@ class OscillatorBank:
             ``(-sigma + i omega) / fs`` of each partial.
         amplitude : ndarray complex (n,)
             Complex amplitude at the next sample rendered.
-        owner : int
-            Recorded in ``owner`` for the caller's bookkeeping.
+        owner : int, 0 <= owner < owners
+            Recorded in ``owner`` for the caller's bookkeeping; it must have no partials.
         index : ndarray of int (n,), optional
             Recorded in ``index`` (e.g. the partial number); default 0..n-1.
 
         Raises
         ------
         ParameterError
-            If the bank has no room (the caller's voice limit should prevent this).
+            If the bank has no room (the caller's voice limit should prevent this), or the
+            owner is out of range or has partials already.
         """
         n = len(lam)
-        lo, hi = self.count, self.count + n
-        if hi > self.capacity:
-            raise ParameterError(f"oscillator bank full: {self.count} + {n} partials > capacity {self.capacity}")
+        lo = self._claim(owner, n)
+        hi = lo + n
         self.lam[lo:hi] = lam
         self.state[lo:hi] = amplitude
-        self.owner[lo:hi] = owner
-        if len(self.owner_counts):
-            self.owner_counts[owner] += n
         self.index[lo:hi] = self._slots[:n] if index is None else index
         self._fill_tables(lo, hi)
         self.count = hi
@@ -215,9 +276,8 @@ class OscillatorBank:
         to it.
         """
         n = len(tables.lam)
-        lo, hi = self.count, self.count + n
-        if hi > self.capacity:
-            raise ParameterError(f"oscillator bank full: {self.count} + {n} partials > capacity {self.capacity}")
+        lo = self._claim(owner, n)
+        hi = lo + n
         self.lam[lo:hi] = tables.lam
         if at:
             back = self._scratch[:n]
@@ -226,9 +286,6 @@ class OscillatorBank:
             np.multiply(amplitude, back, out=self.state[lo:hi])
         else:
             self.state[lo:hi] = amplitude
-        self.owner[lo:hi] = owner
-        if len(self.owner_counts):
-            self.owner_counts[owner] += n
         self.index[lo:hi] = self._slots[:n]
         self._table[lo:hi] = tables.table
         self._steps[:, lo:hi] = tables.steps
@@ -249,14 +306,11 @@ class OscillatorBank:
         With ``correct = (out, stop)`` (the block already rendered into ``out``), the
         partials' old samples ``at..stop-1`` are taken out of it and their new ones added.
         """
-        k = self.count
-        mask = self._keep[:k]
-        np.equal(self.owner[:k], owner, out=mask)
-        h = int(np.count_nonzero(mask))
+        slots = self.owner_slots(owner)
+        h = len(slots)
         if not h:
             return 0
-        slots = np.compress(mask, self._slots[:k], out=self._holes[:h])
-        rows = np.compress(mask, self.index[:k], out=self._movers[:h])
+        rows = self.index.take(slots, out=self._picked[:h], mode="clip")
         if correct is not None:
             self.render_slots(correct[0][at:], slots, at, correct[1], subtract=True)
         if at:
@@ -359,7 +413,9 @@ class OscillatorBank:
         rows, k = a.shape
         part = self._part[:rows]
         np.matmul(a.view(np.float32), table.reshape(2 * k, self.split), out=part)
-        acc += part
+        wide = self._part64[:rows]
+        np.copyto(wide, part)  # a float32 + float64 add would cast through a buffer
+        np.add(acc, wide, out=acc)
 
     def _emit(self, out: NDArray[np.floating], acc: NDArray[np.float64], start: int, stop: int, first: int,
               *, subtract: bool = False) -> None:
@@ -372,11 +428,12 @@ class OscillatorBank:
             out[: stop - start] += seg
 
     def owner_slots(self, owner: int) -> NDArray[np.int64]:
-        """The slots of one owner (a view of a scratch buffer, valid until the next call)."""
-        k = self.count
-        mask = self._keep[:k]
-        np.equal(self.owner[:k], owner, out=mask)
-        return np.compress(mask, self._slots[:k], out=self._picked[: int(np.count_nonzero(mask))])
+        """The slots of one owner, in no particular order (a view of the directory, valid
+        until partials are added or removed)."""
+        if not 0 <= owner < len(self.owner_counts):
+            raise ParameterError(f"owner {owner} must be in 0..{len(self.owner_counts) - 1}")
+        lo = int(self._start[owner])
+        return self._dir[lo: lo + int(self.owner_counts[owner])]
 
     def advance(self, frames: int) -> None:
         """Move every partial ``frames`` (1..max_block) samples on without rendering."""
@@ -405,34 +462,51 @@ class OscillatorBank:
         """Remove every partial of one owner from sample ``at`` of the block on; returns
         how many. With ``correct = (out, stop)``, their samples ``at..stop-1`` are taken
         out of the already rendered ``out``."""
+        slots = self.owner_slots(owner)
         if correct is not None:
-            self.render_slots(correct[0][at:], self.owner_slots(owner), at, correct[1], subtract=True)
-        k = self.count
-        keep = self._keep[:k]
-        np.not_equal(self.owner[:k], owner, out=keep)
+            self.render_slots(correct[0][at:], slots, at, correct[1], subtract=True)
+        keep = self._keep[: self.count]
+        keep[:] = True
+        keep[slots] = False
         return self._compact(keep)
 
     def _compact(self, keep: NDArray[np.bool_]) -> int:
-        """Fill the holes below the new count with the survivors above it."""
+        """Remove the partials not in ``keep``: the survivors above the new count fill the
+        holes below it, and the directory follows."""
         k = self.count
         n_keep = int(np.count_nonzero(keep))
-        if n_keep < k and len(self.owner_counts):
-            dead = self._dead[:k]
-            np.logical_not(keep, out=dead)
-            gone = np.compress(dead, self.owner[:k], out=self._dead_owner[: k - n_keep])
-            np.subtract.at(self.owner_counts, gone, 1)
-        if n_keep < k:
-            holes_mask, movers_mask = self._hole_mask[:n_keep], keep[n_keep:k]
-            np.logical_not(keep[:n_keep], out=holes_mask)
-            h = int(np.count_nonzero(movers_mask))  # as many survivors above as holes below
-            holes = np.compress(holes_mask, self._slots[:n_keep], out=self._holes[:h])
-            movers = np.compress(movers_mask, self._slots[n_keep:k], out=self._movers[:h])
-            for lo in range(0, h, self._move_max):
-                hi = min(lo + self._move_max, h)
-                self._copy_slots(movers[lo:hi], holes[lo:hi])
-            self.state[n_keep:k] = 0.0
-            self.owner[n_keep:k] = -1
-            self.count = n_keep
+        if n_keep == k:
+            return 0
+        run, flags = self._run, self._flags
+        # Each owner's run loses its removed slots; the runs stay in order, so an owner's
+        # new start and end are the kept entries before its old ones.
+        kept = self._kept[:k]
+        keep.take(self._dir[:k], out=kept, mode="clip")
+        _count_before(kept, run, flags)
+        before = run[: k + 1]
+        ends, starts = self._owner_a, self._owner_b
+        np.add(self._start, self.owner_counts, out=starts)
+        before.take(starts, out=ends, mode="clip")
+        before.take(self._start, out=starts, mode="clip")
+        np.subtract(ends, starts, out=self.owner_counts)
+        self._start[:] = starts
+        _scatter_selected(self._dir[:k], self._dir_spare, run, flags, n_keep)
+        self._dir, self._dir_spare = self._dir_spare, self._dir
+        self._pos[self._dir[:n_keep]] = self._slots[:n_keep]  # where each slot is listed
+        # As many survivors above n_keep as holes below it; each mover takes a hole.
+        holes_mask = self._hole_mask[:n_keep]
+        np.logical_not(keep[:n_keep], out=holes_mask)
+        h = _select(holes_mask, self._slots[:n_keep], self._holes, run, flags)
+        _select(keep[n_keep:k], self._slots[n_keep:k], self._movers, run, flags)
+        holes, movers = self._holes[:h], self._movers[:h]
+        places = self._pos.take(movers, out=self._picked[:h], mode="clip")
+        self._dir[places] = holes
+        for lo in range(0, h, self._move_max):
+            hi = min(lo + self._move_max, h)
+            self._copy_slots(movers[lo:hi], holes[lo:hi])
+        self.state[n_keep:k] = 0.0
+        self.owner[n_keep:k] = -1
+        self.count = n_keep
         return k - n_keep
 
     def _copy_slots(self, src: NDArray[np.int64], dst: NDArray[np.int64]) -> None:
