@@ -12,13 +12,12 @@ set by ``.ci/run``, which installs the ``chromium`` package), where it fails.
 from __future__ import annotations
 
 import json
-import os
 import re
 import shutil
 import subprocess
 from pathlib import Path
 
-import pytest
+from needs import skip_or_fail
 
 INSTALL_HINT = "install Debian's chromium (apt-get install chromium)"
 _PROBE = """<script>
@@ -35,10 +34,7 @@ def chromium() -> str:
         found = shutil.which(name)
         if found:
             return found
-    message = f"headless Chromium is missing: {INSTALL_HINT}"
-    if os.environ.get("CI") or os.environ.get("VOICER_DATASETS") == "required":
-        pytest.fail(message, pytrace=False)
-    pytest.skip(message)
+    skip_or_fail(f"headless Chromium is missing: {INSTALL_HINT}")
 
 
 def loaded_images(page: Path, work: Path) -> list[tuple[str, int, int, bool]]:

@@ -22,8 +22,9 @@ from pathlib import Path
 from typing import BinaryIO
 
 import numpy as np
-import pytest
 from numpy.typing import NDArray
+
+from needs import skip_or_fail
 
 __all__ = [
     "SF2_PATH",
@@ -380,10 +381,7 @@ def skip_or_fail_without_dataset(path: Path = SF2_PATH) -> None:
     """
     if path.is_file():
         return
-    message = f"open dataset {path} is missing: {INSTALL_HINT}"
-    if os.environ.get("CI") or os.environ.get("VOICER_DATASETS") == "required":
-        pytest.fail(message, pytrace=False)
-    pytest.skip(message)
+    skip_or_fail(f"open dataset {path} is missing: {INSTALL_HINT}")
 
 
 def fluid_piano_samples(channel: str = "mix") -> list[Sample]:

@@ -195,7 +195,6 @@ def test_directory_follows_adds_culls_removals_and_moves(rng) -> None:
     sum still equals direct evaluation of the surviving partials."""
     owners = 12
     bank = OscillatorBank(600, owners=owners, max_block=256)
-    truth: dict[int, tuple[np.ndarray, np.ndarray]] = {}  # owner -> (lam, amp) added
     for step in range(200):
         v = int(rng.integers(owners))
         action = rng.integers(3)

@@ -12,6 +12,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from needs import check_portaudio
+
 from voicer.cli import main
 from voicer.physics.tuning import KEYS
 
@@ -86,8 +88,7 @@ def test_demo_renders_both_states_and_plays_them(tmp_path) -> None:
     done = subprocess.run([sys.executable, "-W", "error", "-m", "voicer", "demo", "--out-dir", str(out_dir)], env=env,
                           stdin=subprocess.DEVNULL, capture_output=True, text=True, timeout=600)
     out = done.stdout
-    if "libportaudio2" in out:
-        pytest.fail(f"libportaudio2 is missing (CI installs it: apt-get install libportaudio2): {out}")
+    check_portaudio(out)
     assert done.returncode == 0, done.stderr
     assert "Traceback" not in done.stderr, done.stderr
     assert "KH-190 salon grand" in out and "not playing" not in out, out

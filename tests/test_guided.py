@@ -24,6 +24,8 @@ import numpy as np
 import pytest
 import soundfile
 
+from needs import check_portaudio
+
 import voicer
 from voicer import cli_record
 from voicer.analysis import guided
@@ -544,7 +546,7 @@ def test_record_command_names_a_missing_device(tmp_path) -> None:
     proc = _voicer(tmp_path / "home", "record", "--keys", "21-108", "--dynamics", "mf,ff", "-o", str(folder),
                    "--device", "nosuchdevice")
     lines = [line for line in proc.stderr.splitlines() if not line.startswith("ALSA lib ")]  # libasound's own
-    assert "libportaudio2" not in proc.stderr, "libportaudio2 is missing (CI installs it)"
+    check_portaudio(proc.stderr)
     assert proc.returncode == 2 and proc.stdout == "", proc.stderr
     assert len(lines) == 1 and lines[0].startswith(
         "voicer record: error: audio input device 'nosuchdevice' not found: No input device matching 'nosuchdevice' "

@@ -23,6 +23,8 @@ import numpy as np
 import pytest
 import soundfile
 
+from needs import check_portaudio
+
 import voicer
 from voicer.engine.host import Sink
 from voicer.errors import ParameterError, VoicerError
@@ -384,8 +386,7 @@ def _run(home: Path, asoundrc: str, *actions: list) -> list[dict]:
     assert proc.returncode == 0, proc.stderr
     results = json.loads(proc.stdout)
     for result in results:
-        if "libportaudio2" in result.get("error", ""):
-            pytest.fail(f"libportaudio2 is missing (CI installs it: apt-get install libportaudio2): {result['error']}")
+        check_portaudio(result.get("error", ""))
     return results
 
 

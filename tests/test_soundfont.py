@@ -14,7 +14,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from soundfont import SF2_PATH, Sample, SoundFontError, fluid_piano_samples, read_preset_samples, \
+from soundfont import Sample, SoundFontError, fluid_piano_samples, read_preset_samples, \
     skip_or_fail_without_dataset
 
 # Generator operators and sample types (SF2.04 s. 8.1.2, 7.10).

@@ -6,7 +6,6 @@ from __future__ import annotations
 
 import mido
 import numpy as np
-import pytest
 
 from voicer.engine.bank import DEFAULT_SPLIT
 from voicer.engine.instrument import Instrument
