@@ -170,8 +170,7 @@ class OscillatorBank:
         self._dir_spare = np.zeros(capacity + 1, dtype=np.int64)
         self._pos = np.zeros(capacity, dtype=np.int64)
         self._start = np.zeros(owners, dtype=np.int64)
-        self._owner_a = np.zeros(owners, dtype=np.int64)
-        self._owner_b = np.zeros(owners, dtype=np.int64)
+        self._owner_scratch = np.zeros(owners, dtype=np.int64)
         self._run = np.zeros(capacity + 1, dtype=np.int64)  # _select's scratch
         self._flags = np.zeros(capacity + 1, dtype=np.int64)
         self._kept = np.zeros(capacity, dtype=bool)  # the keep mask in directory order
@@ -484,12 +483,12 @@ class OscillatorBank:
         keep.take(self._dir[:k], out=kept, mode="clip")
         _count_before(kept, run, flags)
         before = run[: k + 1]
-        ends, starts = self._owner_a, self._owner_b
-        np.add(self._start, self.owner_counts, out=starts)
-        before.take(starts, out=ends, mode="clip")
-        before.take(self._start, out=starts, mode="clip")
-        np.subtract(ends, starts, out=self.owner_counts)
-        self._start[:] = starts
+        scratch = self._owner_scratch
+        np.add(self._start, self.owner_counts, out=scratch)  # old ends
+        before.take(scratch, out=self.owner_counts, mode="clip")  # new ends
+        before.take(self._start, out=scratch, mode="clip")  # new starts
+        np.subtract(self.owner_counts, scratch, out=self.owner_counts)
+        self._start[:] = scratch
         _scatter_selected(self._dir[:k], self._dir_spare, run, flags, n_keep)
         self._dir, self._dir_spare = self._dir_spare, self._dir
         self._pos[self._dir[:n_keep]] = self._slots[:n_keep]  # where each slot is listed
